@@ -1,0 +1,250 @@
+//! The [`Analyzer`]: one engine for live and offline analysis.
+//!
+//! It takes the analysis signal in blocks of any size (mid and side, see [`crate::level`]), frames
+//! it with the streaming [`Framer`], and measures every frame. The plugin's analysis thread and the
+//! command-line tool call the same [`Analyzer::process`], so live and offline results agree.
+
+use crate::frames::{FrameConfig, Framer, FramingError};
+use crate::level::Level;
+use thiserror::Error;
+
+/// The lowest and highest sample rates the engine accepts, in Hz.
+pub const SAMPLE_RATE_RANGE_HZ: (f64, f64) = (8_000.0, 384_000.0);
+
+/// Settings fixed when an [`Analyzer`] is built.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct AnalysisSettings {
+    /// Sample rate of the analysis signal, Hz.
+    pub sample_rate_hz: f64,
+    /// Frame and hop lengths, samples.
+    pub framing: FrameConfig,
+}
+
+/// Why analysis settings were refused.
+#[derive(Debug, Clone, Copy, PartialEq, Error)]
+pub enum SettingsError {
+    /// The sample rate is outside [`SAMPLE_RATE_RANGE_HZ`] or not finite.
+    #[error("sample rate {sample_rate_hz} Hz is outside 8000..=384000 Hz")]
+    SampleRate {
+        /// The refused sample rate, Hz.
+        sample_rate_hz: f64,
+    },
+    /// The framing is invalid.
+    #[error("invalid framing")]
+    Framing(#[from] FramingError),
+}
+
+impl AnalysisSettings {
+    /// Default settings for a sample rate, checked.
+    pub fn for_sample_rate(sample_rate_hz: f64) -> Result<Self, SettingsError> {
+        Self::new(sample_rate_hz, FrameConfig::for_sample_rate(sample_rate_hz))
+    }
+
+    /// Checks the sample rate; the framing was checked when it was made.
+    pub fn new(sample_rate_hz: f64, framing: FrameConfig) -> Result<Self, SettingsError> {
+        let (lo, hi) = SAMPLE_RATE_RANGE_HZ;
+        if !(lo..=hi).contains(&sample_rate_hz) {
+            return Err(SettingsError::SampleRate { sample_rate_hz });
+        }
+        // Re-check so a hand-built FrameConfig cannot bypass validation.
+        FrameConfig::new(framing.frame_len, framing.hop_len)?;
+        Ok(Self {
+            sample_rate_hz,
+            framing,
+        })
+    }
+}
+
+/// What the analyzer measured on one frame.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct FrameResult {
+    /// Index of the frame since the start (or the last reset).
+    pub index: u64,
+    /// Time of the frame's centre, seconds since the start of the signal.
+    pub time_s: f64,
+    /// The frame's level.
+    pub level: Level,
+}
+
+/// Streams the analysis signal through every measurement. Allocates only in [`Analyzer::new`].
+#[derive(Debug, Clone)]
+pub struct Analyzer {
+    settings: AnalysisSettings,
+    mid: Framer,
+    side: Framer,
+    frames_done: u64,
+    samples_in: u64,
+}
+
+impl Analyzer {
+    /// Builds an analyzer; all memory it will use is reserved here.
+    pub fn new(settings: AnalysisSettings) -> Self {
+        Self {
+            settings,
+            mid: Framer::new(settings.framing),
+            side: Framer::new(settings.framing),
+            frames_done: 0,
+            samples_in: 0,
+        }
+    }
+
+    /// The settings this analyzer was built with.
+    pub fn settings(&self) -> AnalysisSettings {
+        self.settings
+    }
+
+    /// Samples received since the start or the last reset.
+    pub fn samples_in(&self) -> u64 {
+        self.samples_in
+    }
+
+    /// Forgets all input.
+    pub fn reset(&mut self) {
+        self.mid.reset();
+        self.side.reset();
+        self.frames_done = 0;
+        self.samples_in = 0;
+    }
+
+    /// Analyses a block of mid and side samples (equal lengths; pass `None` for side when the
+    /// source is mono) and calls `on_frame` for every frame completed. Does not allocate.
+    pub fn process(
+        &mut self,
+        mid: &[f32],
+        side: Option<&[f32]>,
+        mut on_frame: impl FnMut(&FrameResult),
+    ) {
+        if let Some(side) = side {
+            assert_eq!(
+                mid.len(),
+                side.len(),
+                "mid and side blocks must be equally long"
+            );
+        }
+        self.samples_in += mid.len() as u64;
+        let mut i = 0;
+        while i < mid.len() {
+            let (used, ready) = self.mid.feed(&mid[i..]);
+            match side {
+                Some(side) => self.side.feed(&side[i..i + used]),
+                None => self.side.feed_zeros(used),
+            };
+            i += used;
+            if ready {
+                self.emit(&mut on_frame);
+            }
+        }
+    }
+
+    /// Completes a whole clip: feeds the trailing centre padding (librosa's `center=True`) and
+    /// reports the last frames. Call [`Analyzer::reset`] before reusing the analyzer.
+    pub fn finish(&mut self, mut on_frame: impl FnMut(&FrameResult)) {
+        let mut left = self.mid.tail_len();
+        while left > 0 {
+            let (used, ready) = self.mid.feed_zeros(left);
+            self.side.feed_zeros(used);
+            left -= used;
+            if ready {
+                self.emit(&mut on_frame);
+            }
+        }
+    }
+
+    fn emit(&mut self, on_frame: &mut impl FnMut(&FrameResult)) {
+        let result = self.measure();
+        on_frame(&result);
+        self.mid.advance();
+        self.side.advance();
+    }
+
+    fn measure(&mut self) -> FrameResult {
+        let index = self.frames_done;
+        self.frames_done += 1;
+        FrameResult {
+            index,
+            time_s: (index * self.settings.framing.hop_len as u64) as f64
+                / self.settings.sample_rate_hz,
+            level: Level::measure(self.mid.frame(), self.side.frame()),
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn sine(freq_hz: f64, amp: f64, sample_rate_hz: f64, n: usize) -> Vec<f32> {
+        (0..n)
+            .map(|i| {
+                (amp * (std::f64::consts::TAU * freq_hz * i as f64 / sample_rate_hz).sin()) as f32
+            })
+            .collect()
+    }
+
+    #[test]
+    fn sine_level_matches_closed_form_at_every_rate() {
+        for sr in [8_000.0, 44_100.0, 48_000.0, 96_000.0, 192_000.0, 384_000.0] {
+            let settings = AnalysisSettings::for_sample_rate(sr).expect("valid");
+            let mut analyzer = Analyzer::new(settings);
+            let x = sine(1000.0, 0.1, sr, sr as usize);
+            let mut last = FrameResult::default();
+            analyzer.process(&x, None, |f| last = *f);
+            // −20 dBFS peak ⇒ −23.0103 dBFS RMS (closed form for a sine).
+            assert!((last.level.rms_db + 23.0103).abs() < 0.05, "{sr}: {last:?}");
+            assert!((last.level.peak_db + 20.0).abs() < 0.05, "{sr}: {last:?}");
+        }
+    }
+
+    #[test]
+    fn block_size_and_reset_never_change_results() {
+        let settings = AnalysisSettings::for_sample_rate(48_000.0).expect("valid");
+        let x = sine(440.0, 0.5, 48_000.0, 20_000);
+        let side = sine(3.0, 0.2, 48_000.0, 20_000);
+        let run = |analyzer: &mut Analyzer, block: usize| {
+            let mut out = Vec::new();
+            for (m, s) in x.chunks(block).zip(side.chunks(block)) {
+                analyzer.process(m, Some(s), |f| out.push(*f));
+            }
+            analyzer.finish(|f| out.push(*f));
+            out
+        };
+        let mut analyzer = Analyzer::new(settings);
+        let reference = run(&mut analyzer, x.len());
+        assert_eq!(reference.len(), 1 + x.len() / settings.framing.hop_len);
+        for block in [1, 64, 333, 512, 4096, 16384] {
+            analyzer.reset();
+            assert_eq!(run(&mut analyzer, block), reference, "block {block}");
+        }
+    }
+
+    #[test]
+    fn settings_are_validated() {
+        assert!(matches!(
+            AnalysisSettings::for_sample_rate(1000.0),
+            Err(SettingsError::SampleRate { .. })
+        ));
+        assert!(AnalysisSettings::for_sample_rate(f64::NAN).is_err());
+        let bad = FrameConfig {
+            frame_len: 4,
+            hop_len: 9,
+        };
+        assert!(matches!(
+            AnalysisSettings::new(48_000.0, bad),
+            Err(SettingsError::Framing(_))
+        ));
+    }
+
+    #[test]
+    fn processing_does_not_allocate() {
+        let settings = AnalysisSettings::for_sample_rate(48_000.0).expect("valid");
+        let mut analyzer = Analyzer::new(settings);
+        let x = sine(440.0, 0.5, 48_000.0, 9_000);
+        let mut frames = 0;
+        assert_no_alloc::assert_no_alloc(|| {
+            for block in x.chunks(333) {
+                analyzer.process(block, None, |_| frames += 1);
+            }
+        });
+        assert!(frames > 0);
+    }
+}
