@@ -1,19 +1,41 @@
 //! `weft`: Weft's command-line tool for whole files and folders.
 //!
-//! This first version reads WAV files and prints each file's level timeline summary, using the
-//! same engine as the plugin. Decoding of every common format, folders, timelines and plots come
-//! with the command-line issue.
+//! `weft analyze FILE|DIR…` decodes every common audio format, runs the same engine as the plugin
+//! over each file, and writes per-window timelines (or per-frame rows), a summary table or JSON,
+//! and level plots. See `weft analyze --help` and the README's "Command line" section.
+//!
+//! Exit status: 0 when every file was analysed, 1 when one or more files failed (each is named on
+//! standard error with its reason, and the others are still analysed), 2 for a usage error.
 
 #![forbid(unsafe_code)]
 
-use anyhow::{Context, Result, bail};
-use clap::{Parser, Subcommand};
-use std::path::{Path, PathBuf};
-use weft_engine::{AnalysisSettings, Analyzer, SILENCE_FLOOR_DB};
+mod analyze;
+mod decode;
+mod plot;
+mod report;
+mod resample;
+mod summary;
+mod timeline;
 
-/// Shows what an arrangement is made of: files in, reports out.
+use analyze::{AnalyzeOptions, BatchOutput, FramesMode};
+use anyhow::{Context, Result};
+use clap::{Args, Parser, Subcommand};
+use plot::{PlotFormat, PlotPanel};
+use report::{RowFormat, RowWriter};
+use std::io::Write;
+use std::path::PathBuf;
+use std::process::ExitCode;
+use weft_engine::{AnalysisSettings, FrameConfig};
+
+const EXIT_CODES: &str = "Exit status:
+  0  every file was analysed
+  1  one or more files failed (each is named on standard error with the reason; the others were analysed)
+  2  usage error (bad option or option combination)";
+
+/// Shows what an arrangement is made of: audio files and folders in, timelines, summaries and
+/// plots out.
 #[derive(Parser)]
-#[command(version, about)]
+#[command(version, about, after_help = EXIT_CODES)]
 struct Cli {
     #[command(subcommand)]
     command: Command,
@@ -21,113 +43,311 @@ struct Cli {
 
 #[derive(Subcommand)]
 enum Command {
-    /// Analyse WAV files and print a summary per file.
-    Analyze {
-        /// The files to analyse.
-        #[arg(required = true)]
-        files: Vec<PathBuf>,
-    },
+    /// Analyse audio files and folders: a summary table, timelines, plots.
+    #[command(after_help = EXIT_CODES)]
+    Analyze(AnalyzeArgs),
 }
 
-/// What one file's analysis found.
-struct Summary {
-    seconds: f64,
-    frames: u64,
-    peak_db: f32,
-    loudest_rms_db: f32,
-    mean_rms_db: f32,
+#[derive(Args)]
+struct AnalyzeArgs {
+    /// Audio files (any format Weft decodes: WAV, AIFF, FLAC, MP3, Ogg Vorbis, AAC/M4A, ALAC, …;
+    /// rates below 8 kHz or above 384 kHz are resampled to the nearest of the two) and folders
+    /// (searched recursively for audio files by extension).
+    #[arg(required = true, value_name = "FILE|DIR")]
+    paths: Vec<PathBuf>,
+
+    /// Length of a timeline window, seconds.
+    #[arg(long, value_name = "SECONDS", default_value_t = 1.0)]
+    window: f64,
+
+    /// Write one timeline per file into this folder (created if missing), named
+    /// `<file name>.timeline.csv` (or `.frames.csv` with --frames).
+    #[arg(long, value_name = "DIR")]
+    out: Option<PathBuf>,
+
+    /// Format of the rows: CSV with a header row (units in the column names) or JSON lines.
+    /// Default: csv, or jsonl with --json.
+    #[arg(long, value_enum, value_name = "FORMAT")]
+    format: Option<RowFormat>,
+
+    /// Machine output: one JSON object per file (with its windows) and a closing batch object,
+    /// as JSON lines on standard output, instead of the table.
+    #[arg(long)]
+    json: bool,
+
+    /// Per-frame rows (time, level, every descriptor) instead of per-window rows, equal to
+    /// librosa 0.11.0's features: the whole file is held in memory (up to about 23 minutes at
+    /// 48 kHz) to apply librosa's whole-clip dB floor. With one file and no --out they go to
+    /// standard output (JSON lines with --json, else CSV); the table then goes to standard error.
+    #[arg(long)]
+    frames: bool,
+
+    /// With --frames: stream the frames with the live convention instead (MFCC, flux and
+    /// contrast without the whole-clip floor, as the plugin computes them; bounded memory).
+    #[arg(long, requires = "frames")]
+    live: bool,
+
+    /// Frame length, samples at the analysis rate (default: 2048 below 88.2 kHz, 4096 below
+    /// 176.4 kHz, else 8192).
+    #[arg(long, value_name = "N")]
+    frame_size: Option<usize>,
+
+    /// Hop between frames, samples at the analysis rate (default: a quarter frame).
+    #[arg(long, value_name = "N", requires = "frame_size")]
+    hop_size: Option<usize>,
+
+    /// Resample every file to this rate before analysis, Hz (e.g. 22050 to line frames up with
+    /// librosa's defaults).
+    #[arg(long, value_name = "HZ")]
+    sample_rate: Option<u32>,
+
+    /// Write a plot (.svg or .png): one file's level timeline, or an overview with one panel per
+    /// file for several files.
+    #[arg(long, value_name = "FILE.svg|FILE.png")]
+    plot: Option<PathBuf>,
+
+    /// With --out: also write one plot per file into that folder in this format.
+    #[arg(long, value_enum, value_name = "FORMAT", requires = "out")]
+    plots: Option<PlotFormat>,
+
+    /// Worker threads (default: one per core).
+    #[arg(long, short = 'j', value_name = "N")]
+    jobs: Option<usize>,
+
+    /// No progress bar and no closing throughput line.
+    #[arg(long, short = 'q')]
+    quiet: bool,
 }
 
-fn main() -> std::process::ExitCode {
-    let cli = Cli::parse();
+/// A usage problem found after parsing (exit status 2).
+struct Usage(String);
+
+fn main() -> ExitCode {
+    analyze::install_panic_hook();
+    let cli = match Cli::try_parse() {
+        Ok(cli) => cli,
+        Err(err) => {
+            // clap exits 2 on usage errors and 0 for --help and --version.
+            err.exit();
+        }
+    };
     match cli.command {
-        Command::Analyze { files } => {
-            let mut failed = 0;
-            for file in &files {
-                match analyse(file) {
-                    Ok(s) => println!(
-                        "{}: {:.2} s, {} frames, peak {:.1} dBFS, loudest frame RMS {:.1} dBFS, mean RMS {:.1} dBFS",
-                        file.display(),
-                        s.seconds,
-                        s.frames,
-                        s.peak_db,
-                        s.loudest_rms_db,
-                        s.mean_rms_db
-                    ),
-                    Err(err) => {
-                        failed += 1;
-                        eprintln!("{}: {err:#}", file.display());
-                    }
-                }
+        Command::Analyze(args) => match analyze(args) {
+            Ok(code) => code,
+            Err(Failure::Usage(Usage(message))) => {
+                eprintln!("weft: usage error: {message}");
+                ExitCode::from(2)
             }
-            if failed > 0 {
-                std::process::ExitCode::from(1)
-            } else {
-                std::process::ExitCode::SUCCESS
+            Err(Failure::Other(err)) => {
+                eprintln!("weft: {err:#}");
+                ExitCode::from(1)
             }
-        }
+        },
     }
 }
 
-/// Reads a WAV file as mid and side signals.
-fn read_wav(path: &Path) -> Result<(u32, Vec<f32>, Vec<f32>)> {
-    let mut reader = hound::WavReader::open(path).context("not a readable WAV file")?;
-    let spec = reader.spec();
-    let channels = usize::from(spec.channels);
-    if channels == 0 {
-        bail!("the file declares no channels");
-    }
-    let samples: Vec<f32> = match spec.sample_format {
-        hound::SampleFormat::Float => reader
-            .samples::<f32>()
-            .collect::<Result<_, _>>()
-            .context("the file is truncated or damaged")?,
-        hound::SampleFormat::Int => {
-            if !(1..=32).contains(&spec.bits_per_sample) {
-                bail!("unsupported sample size of {} bits", spec.bits_per_sample);
-            }
-            let scale = 1.0 / f64::from(1u32 << (spec.bits_per_sample - 1));
-            reader
-                .samples::<i32>()
-                .map(|s| s.map(|v| (f64::from(v) * scale) as f32))
-                .collect::<Result<_, _>>()
-                .context("the file is truncated or damaged")?
-        }
-    };
-    let frames = samples.len() / channels;
-    let mut mid = Vec::with_capacity(frames);
-    let mut side = Vec::with_capacity(frames);
-    for frame in samples.chunks_exact(channels) {
-        let (l, r) = (frame[0], frame[channels.min(2) - 1]);
-        mid.push(0.5 * (l + r));
-        side.push(0.5 * (l - r));
-    }
-    Ok((spec.sample_rate, mid, side))
+enum Failure {
+    Usage(Usage),
+    Other(anyhow::Error),
 }
 
-fn analyse(path: &Path) -> Result<Summary> {
-    let (rate, mid, side) = read_wav(path)?;
-    let settings = AnalysisSettings::for_sample_rate(f64::from(rate))?;
-    let mut analyzer = Analyzer::new(settings);
-    let mut summary = Summary {
-        seconds: mid.len() as f64 / f64::from(rate),
-        frames: 0,
-        peak_db: SILENCE_FLOOR_DB,
-        loudest_rms_db: SILENCE_FLOOR_DB,
-        mean_rms_db: SILENCE_FLOOR_DB,
-    };
-    let mut power = 0.0_f64;
-    let mut on_frame = |f: &weft_engine::FrameResult| {
-        summary.frames += 1;
-        summary.peak_db = summary.peak_db.max(f.level.peak_db);
-        summary.loudest_rms_db = summary.loudest_rms_db.max(f.level.rms_db);
-        power += 10f64.powf(f64::from(f.level.rms_db) / 10.0);
-    };
-    analyzer.process(&mid, Some(&side), &mut on_frame);
-    analyzer.finish(&mut on_frame);
-    if summary.frames > 0 {
-        summary.mean_rms_db =
-            weft_engine::level::amplitude_to_db((power / summary.frames as f64).sqrt());
+impl From<anyhow::Error> for Failure {
+    fn from(err: anyhow::Error) -> Self {
+        Self::Other(err)
     }
-    Ok(summary)
+}
+
+fn usage(message: impl Into<String>) -> Failure {
+    Failure::Usage(Usage(message.into()))
+}
+
+fn analyze(args: AnalyzeArgs) -> Result<ExitCode, Failure> {
+    if !(args.window.is_finite() && args.window > 0.0) {
+        return Err(usage(format!(
+            "--window must be a positive number of seconds, not {}",
+            args.window
+        )));
+    }
+    let framing = match args.frame_size {
+        Some(frame) => Some(
+            FrameConfig::new(frame, args.hop_size.unwrap_or((frame / 4).max(1)))
+                .map_err(|e| usage(format!("--frame-size/--hop-size: {e}")))?,
+        ),
+        None => None,
+    };
+    if let Some(rate) = args.sample_rate {
+        AnalysisSettings::for_sample_rate(f64::from(rate))
+            .map_err(|e| usage(format!("--sample-rate: {e}")))?;
+    }
+    if let Some(plot) = &args.plot
+        && PlotFormat::from_path(plot).is_none()
+    {
+        return Err(usage(format!(
+            "--plot {}: the name must end in .svg or .png",
+            plot.display()
+        )));
+    }
+    let jobs = match args.jobs {
+        Some(0) => return Err(usage("--jobs must be at least 1")),
+        Some(n) => n,
+        None => std::thread::available_parallelism().map_or(1, |n| n.get()),
+    };
+    let (files, problems) = analyze::collect_inputs(&args.paths);
+    let frames_to_stdout = args.frames && args.out.is_none();
+    if frames_to_stdout && files.len() + problems.len() > 1 {
+        return Err(usage(
+            "--frames with several files needs --out DIR (one rows file per audio file)",
+        ));
+    }
+    for (path, reason) in &problems {
+        eprintln!("weft: {}: {reason}", path.display());
+    }
+    if let Some(dir) = &args.out {
+        std::fs::create_dir_all(dir)
+            .with_context(|| format!("cannot create the output folder {}", dir.display()))?;
+    }
+    let row_format = args.format.unwrap_or(if args.json {
+        RowFormat::Jsonl
+    } else {
+        RowFormat::Csv
+    });
+    let options = AnalyzeOptions {
+        window_s: args.window,
+        framing,
+        resample_hz: args.sample_rate,
+        frames: match (args.frames, args.live) {
+            (false, _) => FramesMode::Off,
+            (true, false) => FramesMode::WholeClip,
+            (true, true) => FramesMode::Live,
+        },
+    };
+    let output = BatchOutput {
+        out_dir: args.out.clone(),
+        row_format,
+        plots: args.plots,
+        quiet: args.quiet,
+        threads: jobs,
+    };
+
+    let batch = if frames_to_stdout && files.len() == 1 {
+        single_file_frames_to_stdout(&files[0], &options, row_format)?
+    } else {
+        analyze::run_batch(&files, &options, &output)?
+    };
+
+    let mut plot_failed = false;
+    if let Some(dest) = &args.plot {
+        let panels: Vec<PlotPanel<'_>> = batch
+            .results
+            .iter()
+            .filter_map(|(path, r)| r.as_ref().ok().map(|r| (path, r)))
+            .map(|(path, r)| PlotPanel {
+                title: path.file_name().map_or_else(
+                    || path.display().to_string(),
+                    |n| n.to_string_lossy().into_owned(),
+                ),
+                duration_s: r.duration_s,
+                windows: &r.windows,
+            })
+            .collect();
+        if panels.is_empty() {
+            eprintln!(
+                "weft: {}: no file was analysed, so nothing was plotted",
+                dest.display()
+            );
+            plot_failed = true;
+        } else {
+            if panels.len() > plot::MAX_OVERVIEW_PANELS {
+                eprintln!(
+                    "weft: {}: the overview shows the first {} of {} files (use --out DIR --plots png for one plot per file)",
+                    dest.display(),
+                    plot::MAX_OVERVIEW_PANELS,
+                    panels.len()
+                );
+            }
+            if let Err(err) = plot::write_plot(dest, &panels) {
+                eprintln!("weft: {}: the plot failed: {err:#}", dest.display());
+                plot_failed = true;
+            }
+        }
+    }
+
+    let figures = summary::BatchJson::of(&batch);
+    let stdout = std::io::stdout();
+    let mut out = stdout.lock();
+    let write_result = (|| -> Result<()> {
+        if args.json && !frames_to_stdout {
+            for line in summary::json_lines(&batch)? {
+                writeln!(out, "{line}")?;
+            }
+            writeln!(
+                out,
+                "{}",
+                serde_json::to_string(&serde_json::json!({ "batch": &figures }))?
+            )?;
+        } else if frames_to_stdout {
+            if !args.quiet {
+                eprint!("{}", summary::table(&batch));
+            }
+        } else {
+            write!(out, "{}", summary::table(&batch))?;
+        }
+        out.flush()?;
+        Ok(())
+    })();
+    if let Err(err) = write_result {
+        // A closed pipe (`weft … | head`) is not a failure of the analysis.
+        let broken_pipe = err
+            .downcast_ref::<std::io::Error>()
+            .is_some_and(|e| e.kind() == std::io::ErrorKind::BrokenPipe);
+        if !broken_pipe {
+            return Err(err.into());
+        }
+    }
+    if !args.quiet {
+        eprintln!("weft: {}", figures.line());
+    }
+    let failed = figures.failed > 0 || !problems.is_empty() || plot_failed || files.is_empty();
+    Ok(if failed {
+        ExitCode::from(1)
+    } else {
+        ExitCode::SUCCESS
+    })
+}
+
+/// `--frames` for one file without `--out`: rows stream to standard output as they are made.
+fn single_file_frames_to_stdout(
+    file: &std::path::Path,
+    options: &AnalyzeOptions,
+    format: RowFormat,
+) -> Result<analyze::BatchResult> {
+    let start = std::time::Instant::now();
+    let stdout = std::io::stdout();
+    let mut writer = RowWriter::new(std::io::BufWriter::new(stdout.lock()), format);
+    let result = analyze::analyse_file(file, options, Some(&mut writer), &mut |_| {});
+    let flushed = writer.into_inner().map(|_| ());
+    let result = result.and_then(|r| flushed.map(|()| r));
+    if let Err(err) = &result {
+        let closed = err.chain().any(|e| {
+            e.downcast_ref::<std::io::Error>()
+                .is_some_and(|e| e.kind() == std::io::ErrorKind::BrokenPipe)
+        });
+        if closed {
+            // The reader stopped listening (`weft … --frames | head`): stop quietly, as command-
+            // line filters do. Nothing was written to a file, so nothing is left behind.
+            std::process::exit(0);
+        }
+    }
+    let result = result.map_err(|err| {
+        let reason = format!("{err:#}");
+        eprintln!("weft: {}: {reason}", file.display());
+        reason
+    });
+    let audio_s = result.as_ref().map_or(0.0, |r| r.duration_s);
+    Ok(analyze::BatchResult {
+        results: vec![(file.to_owned(), result)],
+        audio_s,
+        elapsed_s: start.elapsed().as_secs_f64(),
+        threads: 1,
+    })
 }

@@ -1,11 +1,22 @@
 //! The [`Analyzer`]: one engine for live and offline analysis.
 //!
 //! It takes the analysis signal in blocks of any size (mid and side, see [`crate::level`]), frames
-//! it with the streaming [`Framer`], and measures every frame. The plugin's analysis thread and the
-//! command-line tool call the same [`Analyzer::process`], so live and offline results agree.
+//! it with the streaming [`Framer`], and measures every frame: its [`Level`] (mid and side) and
+//! its timbre [`Descriptors`] (mid only: the mean of the channels, as librosa 0.11.0 `to_mono`
+//! makes it). The plugin's analysis thread and the command-line tool run the same code.
+//!
+//! - **Live**: [`Analyzer::process`] per block, then (for a finite clip) [`Analyzer::finish`].
+//!   Frames come out as soon as they are complete; the descriptors use the live dB convention
+//!   (no whole-clip `top_db` floor; see [`crate::timbre`]).
+//! - **Offline, equal to librosa**: [`Analyzer::analyze_clip`] takes the whole clip and returns
+//!   every frame with librosa's whole-clip floor applied (what `weft analyze --frames` prints).
+//!
+//! Frames are librosa's `center=True` frames: frame `k` is centred on sample `k·hop` (time
+//! `k·hop / sr`), the clip padded with `frame_len / 2` zeros at each end, `1 + len / hop` frames.
 
 use crate::frames::{FrameConfig, Framer, FramingError};
 use crate::level::Level;
+use crate::timbre::{Descriptors, FloorRecord, Timbre, TimbreError, TimbreOptions};
 use thiserror::Error;
 
 /// The lowest and highest sample rates the engine accepts, in Hz.
@@ -18,6 +29,8 @@ pub struct AnalysisSettings {
     pub sample_rate_hz: f64,
     /// Frame and hop lengths, samples.
     pub framing: FrameConfig,
+    /// The user's timbre choices (custom roll-off fraction, mel scale).
+    pub timbre: TimbreOptions,
 }
 
 /// Why analysis settings were refused.
@@ -32,6 +45,9 @@ pub enum SettingsError {
     /// The framing is invalid.
     #[error("invalid framing")]
     Framing(#[from] FramingError),
+    /// The timbre options are invalid.
+    #[error("invalid timbre options")]
+    Timbre(#[from] TimbreError),
 }
 
 impl AnalysisSettings {
@@ -51,7 +67,20 @@ impl AnalysisSettings {
         Ok(Self {
             sample_rate_hz,
             framing,
+            timbre: TimbreOptions::default(),
         })
+    }
+
+    /// The same settings with other timbre options, checked.
+    pub fn with_timbre(self, timbre: TimbreOptions) -> Result<Self, SettingsError> {
+        Timbre::check(self.sample_rate_hz, self.framing, timbre)?;
+        Ok(Self { timbre, ..self })
+    }
+}
+
+impl AsMut<Descriptors> for FrameResult {
+    fn as_mut(&mut self) -> &mut Descriptors {
+        &mut self.descriptors
     }
 }
 
@@ -64,27 +93,42 @@ pub struct FrameResult {
     pub time_s: f64,
     /// The frame's level.
     pub level: Level,
+    /// The frame's timbre descriptors (of the mid signal).
+    pub descriptors: Descriptors,
 }
 
-/// Streams the analysis signal through every measurement. Allocates only in [`Analyzer::new`].
+/// Streams the analysis signal through every measurement. Allocates only in [`Analyzer::new`]
+/// (and in the offline [`Analyzer::analyze_clip`], which returns a vector).
 #[derive(Debug, Clone)]
 pub struct Analyzer {
     settings: AnalysisSettings,
     mid: Framer,
     side: Framer,
+    timbre: Timbre,
     frames_done: u64,
     samples_in: u64,
+    /// Whether [`Analyzer::finish`] is feeding the trailing centre padding.
+    finishing: bool,
+    result: FrameResult,
 }
 
 impl Analyzer {
     /// Builds an analyzer; all memory it will use is reserved here.
+    ///
+    /// # Panics
+    /// If `settings` was assembled by hand with values [`AnalysisSettings::new`] would refuse.
     pub fn new(settings: AnalysisSettings) -> Self {
+        let timbre = Timbre::new(settings.sample_rate_hz, settings.framing, settings.timbre)
+            .expect("analysis settings are checked by AnalysisSettings::new and with_timbre");
         Self {
             settings,
             mid: Framer::new(settings.framing),
             side: Framer::new(settings.framing),
+            timbre,
             frames_done: 0,
             samples_in: 0,
+            finishing: false,
+            result: FrameResult::default(),
         }
     }
 
@@ -98,21 +142,41 @@ impl Analyzer {
         self.samples_in
     }
 
+    /// The timbre extractor (its mel filterbank, flux shift, options).
+    pub fn timbre(&self) -> &Timbre {
+        &self.timbre
+    }
+
     /// Forgets all input.
     pub fn reset(&mut self) {
         self.mid.reset();
         self.side.reset();
+        self.timbre.reset();
         self.frames_done = 0;
         self.samples_in = 0;
+        self.finishing = false;
     }
 
     /// Analyses a block of mid and side samples (equal lengths; pass `None` for side when the
     /// source is mono) and calls `on_frame` for every frame completed. Does not allocate.
+    ///
+    /// Descriptors follow the live convention (see [`crate::timbre`]); results do not depend on
+    /// how the stream is split into blocks.
     pub fn process(
         &mut self,
         mid: &[f32],
         side: Option<&[f32]>,
         mut on_frame: impl FnMut(&FrameResult),
+    ) {
+        self.run(mid, side, &mut |f, _| on_frame(f));
+    }
+
+    /// [`Analyzer::process`] that also hands out each frame's floor record.
+    fn run(
+        &mut self,
+        mid: &[f32],
+        side: Option<&[f32]>,
+        on_frame: &mut impl FnMut(&FrameResult, &FloorRecord),
     ) {
         if let Some(side) = side {
             assert_eq!(
@@ -131,41 +195,77 @@ impl Analyzer {
             };
             i += used;
             if ready {
-                self.emit(&mut on_frame);
+                self.emit(on_frame);
             }
         }
     }
 
     /// Completes a whole clip: feeds the trailing centre padding (librosa's `center=True`) and
-    /// reports the last frames. Call [`Analyzer::reset`] before reusing the analyzer.
+    /// reports the last frames. Call [`Analyzer::reset`] before reusing the analyzer. Does not
+    /// allocate.
     pub fn finish(&mut self, mut on_frame: impl FnMut(&FrameResult)) {
+        self.finish_run(&mut |f, _| on_frame(f));
+    }
+
+    fn finish_run(&mut self, on_frame: &mut impl FnMut(&FrameResult, &FloorRecord)) {
+        self.finishing = true;
         let mut left = self.mid.tail_len();
         while left > 0 {
             let (used, ready) = self.mid.feed_zeros(left);
             self.side.feed_zeros(used);
             left -= used;
             if ready {
-                self.emit(&mut on_frame);
+                self.emit(on_frame);
             }
         }
     }
 
-    fn emit(&mut self, on_frame: &mut impl FnMut(&FrameResult)) {
-        let result = self.measure();
-        on_frame(&result);
+    /// Analyses a whole clip offline, exactly as librosa 0.11.0 does (see [`crate::timbre`] for
+    /// each descriptor's librosa function): resets, feeds the clip, finishes, applies librosa's
+    /// whole-clip `top_db` floor ([`Timbre::apply_clip_floor`]) and returns every frame in order
+    /// (`1 + len / hop` of them). The analyzer is reset again afterwards.
+    ///
+    /// This is the path for files (`weft analyze --frames`): it allocates the returned vector
+    /// and a few bytes per frame. Live input uses [`Analyzer::process`] instead.
+    ///
+    /// # Panics
+    /// If `side` is given with a length other than `mid`'s.
+    pub fn analyze_clip(&mut self, mid: &[f32], side: Option<&[f32]>) -> Vec<FrameResult> {
+        self.reset();
+        let frames = 1 + mid.len() / self.settings.framing.hop_len;
+        let mut results = Vec::with_capacity(frames);
+        let mut records = Vec::with_capacity(frames);
+        let mut collect = |f: &FrameResult, r: &FloorRecord| {
+            results.push(*f);
+            records.push(*r);
+        };
+        self.run(mid, side, &mut collect);
+        self.finish_run(&mut collect);
+        self.timbre.apply_clip_floor(&mut results, &records);
+        self.reset();
+        results
+    }
+
+    fn emit(&mut self, on_frame: &mut impl FnMut(&FrameResult, &FloorRecord)) {
+        self.measure();
+        on_frame(&self.result, self.timbre.floor_record());
         self.mid.advance();
         self.side.advance();
     }
 
-    fn measure(&mut self) -> FrameResult {
+    fn measure(&mut self) {
         let index = self.frames_done;
+        let signal = self
+            .settings
+            .framing
+            .signal_range(self.frames_done, self.finishing.then_some(self.samples_in));
+        self.timbre
+            .describe(self.mid.frame(), signal, &mut self.result.descriptors);
         self.frames_done += 1;
-        FrameResult {
-            index,
-            time_s: (index * self.settings.framing.hop_len as u64) as f64
-                / self.settings.sample_rate_hz,
-            level: Level::measure(self.mid.frame(), self.side.frame()),
-        }
+        self.result.index = index;
+        self.result.time_s =
+            (index * self.settings.framing.hop_len as u64) as f64 / self.settings.sample_rate_hz;
+        self.result.level = Level::measure(self.mid.frame(), self.side.frame());
     }
 }
 
@@ -218,6 +318,45 @@ mod tests {
     }
 
     #[test]
+    fn block_sizes_1_to_16384_give_identical_descriptors() {
+        // Noise, a tone, silence and a DC step, so every descriptor (flux and the clip-edge
+        // zero-crossing rule included) is exercised; seeded.
+        const SEED: u64 = 0x7157_BE55_0203;
+        let sr = 44_100.0;
+        let settings = AnalysisSettings::for_sample_rate(sr).expect("valid");
+        let mut state = SEED;
+        let mut x: Vec<f32> = (0..40_000)
+            .map(|i| {
+                state ^= state << 13;
+                state ^= state >> 7;
+                state ^= state << 17;
+                let noise = (state >> 40) as f32 / (1u64 << 24) as f32 - 0.5;
+                let tone = (0.4 * (std::f64::consts::TAU * 660.0 * i as f64 / sr).sin()) as f32;
+                if i < 15_000 { 0.2 * noise + tone } else { 0.0 }
+            })
+            .collect();
+        x[30_000..].fill(-0.25);
+        let run = |analyzer: &mut Analyzer, block: usize| {
+            let mut out = Vec::new();
+            for chunk in x.chunks(block) {
+                analyzer.process(chunk, None, |f| out.push(*f));
+            }
+            analyzer.finish(|f| out.push(*f));
+            analyzer.reset();
+            out
+        };
+        let mut analyzer = Analyzer::new(settings);
+        let reference = run(&mut analyzer, x.len());
+        assert_eq!(reference.len(), 1 + x.len() / settings.framing.hop_len);
+        for block in [1, 2, 3, 7, 64, 441, 512, 1000, 2048, 4096, 16_384] {
+            assert!(
+                run(&mut analyzer, block) == reference,
+                "block {block} (seed {SEED:#x})"
+            );
+        }
+    }
+
+    #[test]
     fn settings_are_validated() {
         assert!(matches!(
             AnalysisSettings::for_sample_rate(1000.0),
@@ -244,6 +383,7 @@ mod tests {
             for block in x.chunks(333) {
                 analyzer.process(block, None, |_| frames += 1);
             }
+            analyzer.finish(|_| frames += 1);
         });
         assert!(frames > 0);
     }

@@ -3,8 +3,9 @@
 //! Frames are centred the way librosa 0.11.0 centres them with `center=True`: the stream is
 //! preceded by `frame_len / 2` zeros, so frame `k` is centred on sample `k * hop_len` of the
 //! input. A live stream and a whole file therefore produce the same frames, frame for frame, and
-//! [`Framer::finish`] appends the trailing `frame_len / 2` zeros that complete librosa's padding
-//! for a whole clip. Results never depend on how the input was split into blocks.
+//! feeding [`Framer::tail_len`] more zeros (as [`crate::Analyzer::finish`] does) completes
+//! librosa's padding for a whole clip. Results never depend on how the input was split into
+//! blocks.
 
 use thiserror::Error;
 
@@ -49,6 +50,39 @@ impl FrameConfig {
             return Err(FramingError::HopLength { hop_len, frame_len });
         }
         Ok(Self { frame_len, hop_len })
+    }
+
+    /// Frame and hop lengths given in seconds at `sample_rate_hz`, each rounded to the nearest
+    /// sample and checked like [`FrameConfig::new`] (a duration that is not finite or rounds to
+    /// no sample reads as a length of 0 and is refused).
+    pub fn from_seconds(
+        frame_s: f64,
+        hop_s: f64,
+        sample_rate_hz: f64,
+    ) -> Result<Self, FramingError> {
+        let samples = |s: f64| {
+            let n = (s * sample_rate_hz).round();
+            if n.is_finite() && n >= 0.0 && n <= MAX_FRAME_LEN as f64 {
+                n as usize
+            } else if n.is_finite() && n > 0.0 {
+                MAX_FRAME_LEN + 1
+            } else {
+                0
+            }
+        };
+        Self::new(samples(frame_s), samples(hop_s))
+    }
+
+    /// Which samples of centred frame `index` hold the signal rather than centre padding:
+    /// frame `k` covers signal samples `k·hop − frame_len/2 ..` (so its first
+    /// `frame_len/2 − k·hop` samples are padding while that is positive), and, once the signal's
+    /// length `signal_len` is known (a finished clip), the samples past its end are padding too.
+    pub fn signal_range(&self, index: u64, signal_len: Option<u64>) -> std::ops::Range<usize> {
+        let n = self.frame_len as i128;
+        let first = i128::from(index) * self.hop_len as i128 - n / 2;
+        let start = (-first).clamp(0, n);
+        let end = signal_len.map_or(n, |len| (i128::from(len) - first).clamp(start, n));
+        start as usize..end as usize
     }
 
     /// The framing used by default at `sample_rate_hz`: 2048-sample frames (4096 at 88.2 kHz and
@@ -192,6 +226,37 @@ mod tests {
         for block in [1, 2, 3, 15, 16, 17, 63, 64, 65, 333, 999] {
             assert_eq!(frames_of(&input, config, block), reference, "block {block}");
         }
+    }
+
+    #[test]
+    fn framing_from_seconds_rounds_to_samples_at_any_rate() {
+        // 46.4 ms / 11.6 ms: librosa's 2048/512 at 44.1 kHz, about 371/93 samples at 8 kHz.
+        let c = FrameConfig::from_seconds(2048.0 / 44_100.0, 512.0 / 44_100.0, 44_100.0);
+        assert_eq!(c, FrameConfig::new(2048, 512));
+        let c = FrameConfig::from_seconds(0.046, 0.0116, 8_000.0).expect("valid");
+        assert_eq!((c.frame_len, c.hop_len), (368, 93));
+        let c = FrameConfig::from_seconds(0.02, 0.01, 384_000.0).expect("valid");
+        assert_eq!((c.frame_len, c.hop_len), (7680, 3840));
+        assert_eq!(
+            FrameConfig::from_seconds(f64::NAN, 0.01, 48_000.0),
+            Err(FramingError::FrameLength { frame_len: 0 })
+        );
+        assert!(FrameConfig::from_seconds(1.0, 0.01, 384_000.0).is_err());
+    }
+
+    #[test]
+    fn signal_range_excludes_centre_padding() {
+        let config = FrameConfig::new(8, 2).expect("valid");
+        // Frame 0 is centred on sample 0: its first 4 samples are padding.
+        assert_eq!(config.signal_range(0, None), 4..8);
+        assert_eq!(config.signal_range(1, None), 2..8);
+        assert_eq!(config.signal_range(2, None), 0..8);
+        assert_eq!(config.signal_range(9, None), 0..8);
+        // An 11-sample clip: frame 5 covers samples 6..14, of which 6..11 exist.
+        assert_eq!(config.signal_range(5, Some(11)), 0..5);
+        // A 1-sample clip: frame 0 covers samples −4..4.
+        assert_eq!(config.signal_range(0, Some(1)), 4..5);
+        assert_eq!(config.signal_range(0, Some(0)), 4..4);
     }
 
     #[test]

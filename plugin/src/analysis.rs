@@ -5,7 +5,7 @@
 //! read) and the snapshot triple buffer.
 
 use crate::ring::AnalysisSide;
-use crate::snapshot::{LEVEL_HISTORY_CELL_S, LEVEL_HISTORY_LEN, Snapshot};
+use crate::snapshot::{LEVEL_HISTORY_CELL_S, LEVEL_HISTORY_LEN, Snapshot, TrendCell};
 use nice_plug::prelude::Param;
 use std::path::PathBuf;
 use std::sync::Arc;
@@ -70,41 +70,110 @@ impl AnalysisThread {
     }
 }
 
-/// Turns frame results into the snapshot's level fields.
-struct LevelState {
+/// A one-pole smoother (common practice for meters): `y += (1 − a)(x − y)` per frame with
+/// `a = exp(−hop / τ)`.
+#[derive(Default)]
+struct OnePole(f64);
+
+impl OnePole {
+    fn step(&mut self, x: f64, a: f64) -> f64 {
+        self.0 = a * self.0 + (1.0 - a) * x;
+        self.0
+    }
+}
+
+/// Sums for one history cell.
+#[derive(Default)]
+struct CellSums {
+    frames: u32,
+    power: f64,
+    centroid_power: f64,
+    rolloff_power: f64,
+    flatness: f64,
+    flux_db: f64,
+}
+
+/// Turns frame results into the snapshot's level and timbre fields.
+struct FrameState {
     snapshot: Snapshot,
-    smoothed_power: f64,
-    cell_power: f64,
-    cell_frames: u32,
+    power: OnePole,
+    /// Power-weighted smoothing: numerators (value × power) over the smoothed power.
+    centroid_power: OnePole,
+    bandwidth_power: OnePole,
+    rolloff_power: OnePole,
+    flatness: OnePole,
+    flux_db: OnePole,
+    zcr: OnePole,
+    cell: CellSums,
     frames_per_cell: u32,
     hop_s: f64,
 }
 
-impl LevelState {
+impl FrameState {
+    fn new(snapshot: Snapshot, hop_s: f64) -> Self {
+        Self {
+            snapshot,
+            power: OnePole::default(),
+            centroid_power: OnePole::default(),
+            bandwidth_power: OnePole::default(),
+            rolloff_power: OnePole::default(),
+            flatness: OnePole::default(),
+            flux_db: OnePole::default(),
+            zcr: OnePole::default(),
+            cell: CellSums::default(),
+            frames_per_cell: ((LEVEL_HISTORY_CELL_S / hop_s).round() as u32).max(1),
+            hop_s,
+        }
+    }
+
     fn frame(&mut self, f: &FrameResult, response_ms: f32) {
         let s = &mut self.snapshot;
+        let d = &f.descriptors;
         s.frames = f.index + 1;
         s.rms_db = f.level.rms_db;
         s.peak_db = f.level.peak_db;
         s.peak_hold_db = s.peak_hold_db.max(f.level.peak_db);
         let power = 10f64.powf(f64::from(f.level.rms_db) / 10.0);
-        // One-pole smoothing of power with time constant `response_ms` (common practice for meters).
         let tau_s = f64::from(response_ms.max(1.0)) / 1000.0;
         let a = (-self.hop_s / tau_s).exp();
-        self.smoothed_power = a * self.smoothed_power + (1.0 - a) * power;
-        s.rms_smoothed_db = amplitude_to_db(self.smoothed_power.sqrt());
-        self.cell_power += power;
-        self.cell_frames += 1;
-        if self.cell_frames >= self.frames_per_cell {
-            let mean = self.cell_power / f64::from(self.cell_frames);
-            if s.level_history_len == LEVEL_HISTORY_LEN {
-                s.level_history_db.copy_within(1.., 0);
-                s.level_history_len -= 1;
+        let smoothed = self.power.step(power, a);
+        s.rms_smoothed_db = amplitude_to_db(smoothed.sqrt());
+        let weighted = |pole: &mut OnePole, value: f32| -> f32 {
+            let num = pole.step(f64::from(value) * power, a);
+            if smoothed > 0.0 { (num / smoothed) as f32 } else { 0.0 }
+        };
+        s.timbre.centroid_hz = weighted(&mut self.centroid_power, d.centroid_hz);
+        s.timbre.bandwidth_hz = weighted(&mut self.bandwidth_power, d.bandwidth_hz);
+        s.timbre.rolloff_hz = weighted(&mut self.rolloff_power, d.rolloff_hz);
+        s.timbre.flatness = self.flatness.step(f64::from(d.flatness), a) as f32;
+        s.timbre.flux_db = self.flux_db.step(f64::from(d.flux_db), a) as f32;
+        s.timbre.zero_crossings_per_sample =
+            self.zcr.step(f64::from(d.zero_crossings_per_sample), a) as f32;
+
+        let c = &mut self.cell;
+        c.frames += 1;
+        c.power += power;
+        c.centroid_power += f64::from(d.centroid_hz) * power;
+        c.rolloff_power += f64::from(d.rolloff_hz) * power;
+        c.flatness += f64::from(d.flatness);
+        c.flux_db += f64::from(d.flux_db);
+        if c.frames >= self.frames_per_cell {
+            let n = f64::from(c.frames);
+            let by_power = |sum: f64| if c.power > 0.0 { (sum / c.power) as f32 } else { 0.0 };
+            let cell = TrendCell {
+                rms_db: amplitude_to_db((c.power / n).sqrt()),
+                centroid_hz: by_power(c.centroid_power),
+                rolloff_hz: by_power(c.rolloff_power),
+                flatness: (c.flatness / n) as f32,
+                flux_db: (c.flux_db / n) as f32,
+            };
+            if s.history_len == LEVEL_HISTORY_LEN {
+                s.history.copy_within(1.., 0);
+                s.history_len -= 1;
             }
-            s.level_history_db[s.level_history_len] = amplitude_to_db(mean.sqrt());
-            s.level_history_len += 1;
-            self.cell_power = 0.0;
-            self.cell_frames = 0;
+            s.history[s.history_len] = cell;
+            s.history_len += 1;
+            self.cell = CellSums::default();
         }
     }
 }
@@ -112,20 +181,16 @@ impl LevelState {
 fn run(mut job: AnalysisJob, stop: &AtomicBool) -> triple_buffer::Input<Snapshot> {
     let settings = job.analyzer.settings();
     let hop_s = settings.framing.hop_len as f64 / settings.sample_rate_hz;
-    let mut state = LevelState {
-        snapshot: Snapshot {
+    let mut state = FrameState::new(
+        Snapshot {
             active: true,
             offline: job.offline,
             sample_rate_hz: settings.sample_rate_hz as f32,
             channels: job.channels,
             ..Snapshot::default()
         },
-        smoothed_power: 0.0,
-        cell_power: 0.0,
-        cell_frames: 0,
-        frames_per_cell: ((LEVEL_HISTORY_CELL_S / hop_s).round() as u32).max(1),
         hop_s,
-    };
+    );
     let mut mid = vec![0.0_f32; DRAIN_CHUNK];
     let mut side = vec![0.0_f32; DRAIN_CHUNK];
     job.publish.write(state.snapshot);

@@ -89,9 +89,7 @@ impl NiceEguiApp for Panel {
                     card(&mut cols[0], "Instrument mix", |ui| {
                         later(ui, "Family shares appear here once a palette is loaded.")
                     });
-                    card(&mut cols[1], "Timbre", |ui| {
-                        later(ui, "Descriptors appear here once the timbre analysis runs.")
-                    });
+                    card(&mut cols[1], "Timbre", |ui| timbre_view(ui, &snap));
                     card(&mut cols[2], "Style", |ui| {
                         later(
                             ui,
@@ -238,7 +236,8 @@ fn reading(ui: &mut egui::Ui, name: &str, db: f32, colour: Color32) {
 
 /// The last ten seconds of RMS level as a line, newest at the right.
 fn level_trace(ui: &mut egui::Ui, snap: &Snapshot) {
-    let history = snap.level_history();
+    let history: Vec<f32> = snap.history().iter().map(|c| c.rms_db).collect();
+    let history = &history[..];
     let size = Vec2::new(ui.available_width(), 70.0);
     let (rect, _) = ui.allocate_exact_size(size, Sense::hover());
     let painter = ui.painter_at(rect);
@@ -273,4 +272,60 @@ fn level_trace(ui: &mut egui::Ui, snap: &Snapshot) {
 fn clock(seconds: f64) -> String {
     let minutes = (seconds / 60.0).floor();
     format!("{}:{:04.1}", minutes as u64, seconds - minutes * 60.0)
+}
+
+/// Frequencies as "850 Hz" or "2.35 kHz".
+fn hz(value: f32) -> String {
+    if value >= 1000.0 {
+        format!("{:.2} kHz", value / 1000.0)
+    } else {
+        format!("{value:.0} Hz")
+    }
+}
+
+/// Compact timbre readouts, each with a short trend line over the history span.
+fn timbre_view(ui: &mut egui::Ui, snap: &Snapshot) {
+    let t = &snap.timbre;
+    let history = snap.history();
+    let rows: [(&str, String, fn(&crate::snapshot::TrendCell) -> f32); 4] = [
+        ("Centroid", hz(t.centroid_hz), |c| c.centroid_hz),
+        ("Roll-off", hz(t.rolloff_hz), |c| c.rolloff_hz),
+        ("Flatness", format!("{:.3}", t.flatness), |c| c.flatness),
+        ("Flux", format!("{:.2} dB", t.flux_db), |c| c.flux_db),
+    ];
+    egui::Grid::new("timbre").num_columns(3).spacing([8.0, 4.0]).show(ui, |ui| {
+        for (name, value, pick) in rows {
+            ui.label(RichText::new(name).color(colours::MUTED));
+            ui.label(RichText::new(value).monospace());
+            let values: Vec<f32> = history.iter().map(pick).collect();
+            sparkline(ui, &values);
+            ui.end_row();
+        }
+    });
+}
+
+/// A small trend line scaled to its own range (newest at the right).
+fn sparkline(ui: &mut egui::Ui, values: &[f32]) {
+    let (rect, _) = ui.allocate_exact_size(vec2(70.0, 16.0), Sense::hover());
+    if values.len() < 2 {
+        return;
+    }
+    let (lo, hi) = values
+        .iter()
+        .fold((f32::MAX, f32::MIN), |(lo, hi), &v| (lo.min(v), hi.max(v)));
+    let span = (hi - lo).max(1e-6);
+    let step = rect.width() / (LEVEL_HISTORY_LEN - 1) as f32;
+    let start = LEVEL_HISTORY_LEN - values.len();
+    let points: Vec<_> = values
+        .iter()
+        .enumerate()
+        .map(|(i, &v)| {
+            pos2(
+                rect.left() + (start + i) as f32 * step,
+                rect.bottom() - rect.height() * (v - lo) / span,
+            )
+        })
+        .collect();
+    ui.painter()
+        .add(egui::Shape::line(points, Stroke::new(1.5, colours::LEVEL)));
 }

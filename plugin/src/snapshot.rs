@@ -3,10 +3,42 @@
 //! A [`Snapshot`] describes itself: fixed-size arrays with the counts needed to read them, in raw
 //! units (dBFS, Hz, samples). The panel does all display scaling.
 
-/// Level history cells kept in a snapshot (one per [`LEVEL_HISTORY_CELL_S`]).
+/// History cells kept in a snapshot (one per [`LEVEL_HISTORY_CELL_S`]).
 pub const LEVEL_HISTORY_LEN: usize = 100;
-/// Seconds summarised by one level history cell.
+/// Seconds summarised by one history cell.
 pub const LEVEL_HISTORY_CELL_S: f64 = 0.1;
+
+/// The timbre descriptors the panel shows, smoothed with the response time. Raw units.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct TimbreReading {
+    /// Spectral centroid, Hz (power-weighted over frames, so quiet gaps do not drag it to 0).
+    pub centroid_hz: f32,
+    /// Spectral bandwidth (p = 2), Hz (power-weighted like the centroid).
+    pub bandwidth_hz: f32,
+    /// 85 % roll-off frequency, Hz (power-weighted like the centroid).
+    pub rolloff_hz: f32,
+    /// Spectral flatness, 0 (tonal) to 1 (noise-like).
+    pub flatness: f32,
+    /// Spectral flux (onset strength), dB per frame.
+    pub flux_db: f32,
+    /// Zero crossings per sample, 0–1.
+    pub zero_crossings_per_sample: f32,
+}
+
+/// One history cell: means over [`LEVEL_HISTORY_CELL_S`].
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct TrendCell {
+    /// Mean RMS level, dBFS.
+    pub rms_db: f32,
+    /// Power-weighted mean centroid, Hz.
+    pub centroid_hz: f32,
+    /// Power-weighted mean 85 % roll-off, Hz.
+    pub rolloff_hz: f32,
+    /// Mean flatness, 0–1.
+    pub flatness: f32,
+    /// Mean flux, dB per frame.
+    pub flux_db: f32,
+}
 
 /// The newest analysis results, published through a triple buffer.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -33,10 +65,12 @@ pub struct Snapshot {
     pub rms_smoothed_db: f32,
     /// Loudest frame peak since activation, dBFS.
     pub peak_hold_db: f32,
-    /// Mean RMS level per history cell, dBFS, oldest first; `level_history_len` are valid.
-    pub level_history_db: [f32; LEVEL_HISTORY_LEN],
-    /// Valid entries in `level_history_db`.
-    pub level_history_len: usize,
+    /// Smoothed timbre descriptors of the newest frames.
+    pub timbre: TimbreReading,
+    /// History cells, oldest first; `history_len` are valid.
+    pub history: [TrendCell; LEVEL_HISTORY_LEN],
+    /// Valid entries in `history`.
+    pub history_len: usize,
 }
 
 impl Default for Snapshot {
@@ -54,16 +88,17 @@ impl Default for Snapshot {
             peak_db: floor,
             rms_smoothed_db: floor,
             peak_hold_db: floor,
-            level_history_db: [floor; LEVEL_HISTORY_LEN],
-            level_history_len: 0,
+            timbre: TimbreReading::default(),
+            history: [TrendCell::default(); LEVEL_HISTORY_LEN],
+            history_len: 0,
         }
     }
 }
 
 impl Snapshot {
-    /// The valid part of the level history, oldest first.
-    pub fn level_history(&self) -> &[f32] {
-        &self.level_history_db[..self.level_history_len]
+    /// The valid part of the history, oldest first.
+    pub fn history(&self) -> &[TrendCell] {
+        &self.history[..self.history_len]
     }
 
     /// The snapshot as JSON, for test hosts and tools.
@@ -80,7 +115,15 @@ impl Snapshot {
             "peak_db": self.peak_db,
             "rms_smoothed_db": self.rms_smoothed_db,
             "peak_hold_db": self.peak_hold_db,
-            "level_history_db": self.level_history(),
+            "level_history_db": self.history().iter().map(|c| c.rms_db).collect::<Vec<_>>(),
+            "timbre": {
+                "centroid_hz": self.timbre.centroid_hz,
+                "bandwidth_hz": self.timbre.bandwidth_hz,
+                "rolloff_hz": self.timbre.rolloff_hz,
+                "flatness": self.timbre.flatness,
+                "flux_db": self.timbre.flux_db,
+                "zero_crossings_per_sample": self.timbre.zero_crossings_per_sample,
+            },
         })
     }
 }

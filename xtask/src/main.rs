@@ -10,7 +10,9 @@
 
 #![forbid(unsafe_code)]
 
+mod bench_timbre;
 mod live;
+mod palette;
 mod setup;
 mod shot;
 mod signal;
@@ -28,6 +30,8 @@ usage: cargo xtask <task>
   test                      set up, bundle, and run every test
   live                      run the standalone panel on the default input (or a demo signal)
   shot [--out FILE]         render the panel under Xvfb into a PNG (default shots/panel.png)
+  bench-timbre              time the timbre descriptors against librosa on a 3-minute file
+  palette [--check]         regenerate the built-in palette from FluidR3_GM and espeak-ng
 ";
 
 fn main() -> Result<()> {
@@ -43,6 +47,8 @@ fn main() -> Result<()> {
         "test" => testrun::run(),
         "live" => live::run(),
         "shot" => shot::run(&shot::Options::parse(&rest)?),
+        "bench-timbre" => bench_timbre::run(),
+        "palette" => palette::run(&rest),
         "" | "help" | "--help" | "-h" => {
             print!("{USAGE}");
             Ok(())

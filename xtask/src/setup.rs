@@ -35,8 +35,16 @@ pub const APT_PACKAGES: &[(&str, &[&str])] = &[
         &["fluid-soundfont-gm"],
     ),
     (
+        "sung vowels for the default palette's voice family (espeak-ng speech synthesiser)",
+        &["espeak-ng"],
+    ),
+    (
         "loading the VST3 bundle in a headless scanner (ardour-vst3-scanner)",
         &["ardour"],
+    ),
+    (
+        "the command-line tool's tests and plots (FFmpeg encodes test files, GNU time measures memory, fonts and fontconfig for plot text)",
+        &["ffmpeg", "time", "fonts-dejavu-core", "libfontconfig1-dev"],
     ),
 ];
 

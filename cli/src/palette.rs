@@ -1,0 +1,682 @@
+//! `weft palette learn | render | check`: build palettes from recordings or from a SoundFont,
+//! and measure them on held-out mixes against exact ground truth.
+
+use crate::decode::Source;
+use crate::resample::StreamResampler;
+use anyhow::{Context, Result, bail};
+use clap::{Args, Subcommand, ValueEnum};
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use weft_engine::palette::{
+    AnalysisSpec, BuildPlan, CheckPlan, DEFAULT_FAMILIES, DEFAULT_SECTIONS, Family, LearnSettings,
+    Palette, Provenance, build_palette, check_palette,
+};
+use weft_engine::scene::{
+    ClipBank, Composer, FamilyVoicing, Role, SoundFontRenderer, VoiceSource, general_midi_voicings,
+};
+use weft_engine::shares::check::CheckReport;
+use weft_engine::shares::{PresenceTraining, SharesMode};
+
+/// The SoundFont Debian's `fluid-soundfont-gm` installs.
+pub const DEFAULT_SOUNDFONT: &str = "/usr/share/sounds/sf2/FluidR3_GM.sf2";
+
+/// Build palettes and measure them.
+#[derive(Args, Debug)]
+pub struct PaletteArgs {
+    #[command(subcommand)]
+    /// What to do.
+    pub command: PaletteCommand,
+}
+
+/// The palette commands.
+#[derive(Subcommand, Debug)]
+pub enum PaletteCommand {
+    /// Learn a palette from recordings: one folder per family (any common audio format).
+    Learn(LearnArgs),
+    /// Build a palette from a General MIDI SoundFont (and sung vowels from espeak-ng).
+    Render(RenderArgs),
+    /// Measure a palette on held-out mixes rendered with exact ground truth.
+    Check(CheckArgs),
+}
+
+/// Where the voice family's vowels come from.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum VoiceSourceArg {
+    /// espeak-ng sung syllables at several pitches and voices, plus the SoundFont's choir
+    /// programs (needs the `espeak-ng` package).
+    Espeak,
+    /// Only the SoundFont's choir programs.
+    Soundfont,
+}
+
+/// Which stages a check runs.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum ModeArg {
+    /// Presence, then amount (the product).
+    TwoStage,
+    /// NMF alone (the baseline, also reported by two-stage).
+    Nmf,
+    /// Amount over the truly present families (the ceiling of the amount stage).
+    KnownPresence,
+}
+
+/// Settings shared by `learn` and `render`.
+#[derive(Args, Debug, Clone)]
+pub struct BuildOptions {
+    /// Seed of every random choice.
+    #[arg(long, default_value_t = 1)]
+    pub seed: u64,
+    /// Training mixes for the presence model.
+    #[arg(long, default_value_t = BuildPlan::default().training_mixes)]
+    pub mixes: usize,
+    /// Length of each training mix, seconds.
+    #[arg(long, default_value_t = BuildPlan::default().mix_s)]
+    pub mix_seconds: f64,
+    /// Atoms per family.
+    #[arg(long, default_value_t = LearnSettings::default().atoms)]
+    pub atoms: usize,
+    /// Mel bands.
+    #[arg(long, default_value_t = AnalysisSpec::DEFAULT.bands)]
+    pub bands: usize,
+    /// Columns stacked per atom.
+    #[arg(long, default_value_t = AnalysisSpec::DEFAULT.stack)]
+    pub stack: usize,
+    /// Seconds per column.
+    #[arg(long, default_value_t = AnalysisSpec::DEFAULT.column_s)]
+    pub column_seconds: f64,
+    /// β of the divergence.
+    #[arg(long, default_value_t = AnalysisSpec::DEFAULT.beta)]
+    pub beta: f64,
+    /// Multiplicative updates per column.
+    #[arg(long, default_value_t = AnalysisSpec::DEFAULT.iterations)]
+    pub iterations: usize,
+    /// Fraction of a column the fit may miss before the rest is *unexplained*.
+    #[arg(long, default_value_t = AnalysisSpec::DEFAULT.unexplained_tolerance)]
+    pub tolerance: f64,
+    /// Hidden units of the presence model (0: logistic regression).
+    #[arg(long, default_value_t = PresenceTraining::default().hidden)]
+    pub hidden: usize,
+    /// Training epochs of the presence model.
+    #[arg(long, default_value_t = PresenceTraining::default().epochs)]
+    pub epochs: usize,
+    /// L2 penalty of the presence model.
+    #[arg(long, default_value_t = PresenceTraining::default().l2)]
+    pub l2: f32,
+    /// Worker threads (default: all cores).
+    #[arg(long)]
+    pub threads: Option<usize>,
+}
+
+/// `weft palette learn`.
+#[derive(Args, Debug)]
+pub struct LearnArgs {
+    /// A folder holding one folder per family (the folder's name is the family's name), each
+    /// with ≥ 10 s of recordings of that family alone.
+    pub folder: PathBuf,
+    /// The palette file to write.
+    #[arg(long, short)]
+    pub out: PathBuf,
+    /// The palette's name.
+    #[arg(long, default_value = "my palette")]
+    pub name: String,
+    /// A family's section, as FAMILY=SECTION (default: the default palette's section for a
+    /// family of that name, else a section named after the family).
+    #[arg(long = "section", value_parser = parse_pair)]
+    pub sections: Vec<(String, String)>,
+    #[command(flatten)]
+    /// Build settings.
+    pub build: BuildOptions,
+}
+
+/// `weft palette render`.
+#[derive(Args, Debug)]
+pub struct RenderArgs {
+    /// The SF2 SoundFont.
+    #[arg(long, default_value = DEFAULT_SOUNDFONT)]
+    pub soundfont: PathBuf,
+    /// The palette file to write.
+    #[arg(long, short)]
+    pub out: PathBuf,
+    /// Where the voice family's vowels come from.
+    #[arg(long, value_enum, default_value = "espeak")]
+    pub voice: VoiceSourceArg,
+    #[command(flatten)]
+    /// Build settings.
+    pub build: BuildOptions,
+}
+
+/// `weft palette check`.
+#[derive(Args, Debug)]
+pub struct CheckArgs {
+    /// The palette to check (default: the built-in palette).
+    #[arg(long)]
+    pub palette: Option<PathBuf>,
+    /// The SF2 SoundFont the held-out mixes are rendered with.
+    #[arg(long, default_value = DEFAULT_SOUNDFONT)]
+    pub soundfont: PathBuf,
+    /// A folder of one folder per family with recordings the palette never saw (for palettes
+    /// learned from recordings, and for families no SoundFont voices).
+    #[arg(long)]
+    pub folders: Option<PathBuf>,
+    /// Where the voice family's vowels come from (held-out voices, pitches and syllables).
+    #[arg(long, value_enum, default_value = "espeak")]
+    pub voice: VoiceSourceArg,
+    /// Seed of the held-out mixes (drawn from a stream no palette build uses).
+    #[arg(long, default_value_t = 1)]
+    pub seed: u64,
+    /// Number of held-out mixes.
+    #[arg(long, default_value_t = 60)]
+    pub mixes: usize,
+    /// Length of each mix, seconds.
+    #[arg(long, default_value_t = 8.0)]
+    pub mix_seconds: f64,
+    /// Which stages run.
+    #[arg(long, value_enum, default_value = "two-stage")]
+    pub mode: ModeArg,
+    /// Print one JSON object instead of tables.
+    #[arg(long)]
+    pub json: bool,
+    /// Worker threads (default: all cores; the realtime factor is per thread).
+    #[arg(long)]
+    pub threads: Option<usize>,
+}
+
+fn parse_pair(s: &str) -> Result<(String, String), String> {
+    s.split_once('=')
+        .map(|(a, b)| (a.trim().to_owned(), b.trim().to_owned()))
+        .filter(|(a, b)| !a.is_empty() && !b.is_empty())
+        .ok_or_else(|| format!("expected FAMILY=SECTION, got '{s}'"))
+}
+
+/// Runs a palette command.
+pub fn run(args: PaletteArgs) -> Result<()> {
+    match args.command {
+        PaletteCommand::Learn(a) => learn(&a),
+        PaletteCommand::Render(a) => render(&a),
+        PaletteCommand::Check(a) => {
+            let report = check(&a)?;
+            if a.json {
+                let mut v = report.to_json();
+                if let Some(o) = v.as_object_mut() {
+                    o.insert("seed".into(), a.seed.into());
+                    o.insert("mix_seconds".into(), a.mix_seconds.into());
+                }
+                println!("{v}");
+            } else {
+                print_report(&report);
+            }
+            Ok(())
+        }
+    }
+}
+
+const RENDER_RATE_HZ: u32 = 48_000;
+
+fn threads(t: Option<usize>) -> usize {
+    t.unwrap_or_else(|| std::thread::available_parallelism().map_or(2, usize::from))
+        .max(1)
+}
+
+fn plan_from(o: &BuildOptions) -> BuildPlan {
+    let analysis = AnalysisSpec {
+        bands: o.bands,
+        stack: o.stack,
+        column_s: o.column_seconds,
+        beta: o.beta,
+        iterations: o.iterations,
+        unexplained_tolerance: o.tolerance,
+        ..AnalysisSpec::DEFAULT
+    };
+    BuildPlan {
+        sample_rate_hz: RENDER_RATE_HZ,
+        analysis,
+        learn: LearnSettings {
+            atoms: o.atoms,
+            ..LearnSettings::default()
+        },
+        training_mixes: o.mixes,
+        mix_s: o.mix_seconds,
+        presence: PresenceTraining {
+            hidden: o.hidden,
+            epochs: o.epochs,
+            l2: o.l2,
+            ..PresenceTraining::default()
+        },
+        seed: o.seed,
+        threads: threads(o.threads),
+        ..BuildPlan::default()
+    }
+}
+
+fn progress(msg: &str) {
+    eprintln!("{msg}");
+}
+
+fn load_soundfont(path: &Path) -> Result<SoundFontRenderer> {
+    let mut file = std::io::BufReader::new(
+        std::fs::File::open(path)
+            .with_context(|| format!("cannot open the SoundFont {}", path.display()))?,
+    );
+    SoundFontRenderer::new(&mut file, RENDER_RATE_HZ)
+        .with_context(|| format!("cannot load the SoundFont {}", path.display()))
+}
+
+fn default_families() -> (Vec<Family>, Vec<String>) {
+    let sections: Vec<String> = DEFAULT_SECTIONS.iter().map(|s| (*s).to_owned()).collect();
+    let families = DEFAULT_FAMILIES
+        .iter()
+        .map(|(name, section)| Family {
+            name: (*name).to_owned(),
+            section: DEFAULT_SECTIONS
+                .iter()
+                .position(|s| s == section)
+                .unwrap_or(0),
+        })
+        .collect();
+    (families, sections)
+}
+
+/// Which espeak-ng voices, pitches and syllables make a set of sung vowels. Palettes are built
+/// from the first set; checks use the second, which shares none of its voices, pitches or
+/// syllables.
+const ESPEAK_SETS: [(&[&str], &[u32], &[&str]); 2] = [
+    (
+        &["en+m1", "en+m3", "en+m5", "en+f1", "en+f3", "en+f5"],
+        &[20, 50, 80],
+        &[
+            "laa laa laa laa",
+            "aah ooh aah",
+            "maa mee moo maa",
+            "oh yeah oh yeah",
+            "hold me close my love",
+        ],
+    ),
+    (
+        &["en+m2", "en+m4", "en+f2", "en+f4", "en-us+m6"],
+        &[35, 65, 95],
+        &[
+            "doo bee doo bee",
+            "ooh aah ooh",
+            "la dee da dee",
+            "nah nah nah nah",
+            "sing along with me now",
+        ],
+    ),
+];
+
+/// Renders sung syllables with espeak-ng (slow, at several voices and pitches) and returns
+/// them at the render rate.
+fn espeak_clips(set: usize) -> Result<Vec<Vec<f32>>> {
+    let (voices, pitches, texts) = ESPEAK_SETS[set.min(1)];
+    let dir = std::env::temp_dir().join(format!("weft-espeak-{}-{set}", std::process::id()));
+    std::fs::create_dir_all(&dir).with_context(|| format!("cannot create {}", dir.display()))?;
+    let mut clips = Vec::new();
+    let mut n = 0;
+    for voice in voices {
+        for pitch in pitches {
+            for text in texts {
+                let path = dir.join(format!("{n}.wav"));
+                n += 1;
+                let status = Command::new("espeak-ng")
+                    .args(["-v", voice, "-p", &pitch.to_string(), "-s", "90", "-w"])
+                    .arg(&path)
+                    .arg(text)
+                    .status()
+                    .context("cannot run espeak-ng (install it: cargo xtask setup)")?;
+                if !status.success() {
+                    bail!("espeak-ng failed for voice {voice} ({status})");
+                }
+                clips.push(load_mono(&path)?);
+            }
+        }
+    }
+    let _ = std::fs::remove_dir_all(&dir);
+    Ok(clips)
+}
+
+/// Decodes a file (any common format) to mono at the render rate.
+fn load_mono(path: &Path) -> Result<Vec<f32>> {
+    let mut source =
+        Source::open(path).with_context(|| format!("cannot read {}", path.display()))?;
+    let rate = source.info().sample_rate_hz;
+    let mut mid = Vec::new();
+    let mut side = Vec::new();
+    while let Some((m, s)) = source
+        .next_block()
+        .with_context(|| format!("cannot decode {}", path.display()))?
+    {
+        mid.extend_from_slice(m);
+        side.extend_from_slice(s);
+    }
+    if rate == RENDER_RATE_HZ {
+        return Ok(mid);
+    }
+    let mut rs = StreamResampler::new(rate, RENDER_RATE_HZ)?;
+    let mut out =
+        Vec::with_capacity(mid.len() * RENDER_RATE_HZ as usize / rate.max(1) as usize + 16);
+    let mut sink = |m: &[f32], _: &[f32]| out.extend_from_slice(m);
+    rs.process(&mid, &side, &mut sink)?;
+    rs.finish(&mut sink)?;
+    Ok(out)
+}
+
+/// Reads `folder/<family>/*` into a clip bank; returns the family names (sorted) and clips.
+fn read_folders(folder: &Path) -> Result<(Vec<String>, ClipBank)> {
+    let mut names = Vec::new();
+    for entry in
+        std::fs::read_dir(folder).with_context(|| format!("cannot read {}", folder.display()))?
+    {
+        let entry = entry?;
+        if entry.file_type()?.is_dir() {
+            names.push(entry.file_name().to_string_lossy().into_owned());
+        }
+    }
+    names.sort();
+    if names.is_empty() {
+        bail!("{} holds no family folders", folder.display());
+    }
+    let mut bank = ClipBank::new(names.len());
+    for (f, name) in names.iter().enumerate() {
+        let mut files: Vec<PathBuf> = std::fs::read_dir(folder.join(name))?
+            .filter_map(|e| e.ok().map(|e| e.path()))
+            .filter(|p| p.is_file())
+            .collect();
+        files.sort();
+        let mut total_s = 0.0;
+        for file in files {
+            match load_mono(&file) {
+                Ok(x) => {
+                    total_s += x.len() as f64 / f64::from(RENDER_RATE_HZ);
+                    bank.add(f, x);
+                }
+                Err(e) => eprintln!("skipping {}: {e:#}", file.display()),
+            }
+        }
+        if total_s < 10.0 {
+            bail!("family '{name}' has {total_s:.1} s of audio; at least 10 s are needed");
+        }
+        eprintln!("  {name}: {total_s:.1} s of recordings");
+    }
+    Ok((names, bank))
+}
+
+fn clip_voicing(name: &str) -> FamilyVoicing {
+    FamilyVoicing {
+        family: name.to_owned(),
+        source: VoiceSource::Clips,
+        keys: (0, 127),
+        velocities: (1, 127),
+        roles: vec![Role::Line],
+    }
+}
+
+fn learn(a: &LearnArgs) -> Result<()> {
+    let (names, bank) = read_folders(&a.folder)?;
+    let mut sections: Vec<String> = Vec::new();
+    let mut families = Vec::new();
+    for name in &names {
+        let section = a
+            .sections
+            .iter()
+            .find(|(f, _)| f == name)
+            .map(|(_, s)| s.clone())
+            .or_else(|| {
+                DEFAULT_FAMILIES
+                    .iter()
+                    .find(|(f, _)| f == name)
+                    .map(|(_, s)| (*s).to_owned())
+            })
+            .unwrap_or_else(|| name.clone());
+        let idx = match sections.iter().position(|s| *s == section) {
+            Some(i) => i,
+            None => {
+                sections.push(section);
+                sections.len() - 1
+            }
+        };
+        families.push(Family {
+            name: name.clone(),
+            section: idx,
+        });
+    }
+    let voicings: Vec<FamilyVoicing> = names.iter().map(|n| clip_voicing(n)).collect();
+    let composer = Composer::new(voicings, bank.counts(), 1.0);
+    let plan = plan_from(&a.build);
+    let provenance = Provenance {
+        weft_version: env!("CARGO_PKG_VERSION").to_owned(),
+        source: format!("folders: {}", names.join(", ")),
+        seed: plan.seed,
+        notes: vec![format!(
+            "{} training mixes of {} s",
+            plan.training_mixes, plan.mix_s
+        )],
+    };
+    let palette = build_palette(
+        &a.name, families, sections, None, &composer, &bank, &plan, provenance, &progress,
+    )?;
+    write_palette(&palette, &a.out)
+}
+
+fn write_palette(palette: &Palette, out: &Path) -> Result<()> {
+    let bytes = palette.to_bytes();
+    std::fs::write(out, &bytes).with_context(|| format!("cannot write {}", out.display()))?;
+    eprintln!(
+        "wrote {} ({} bytes: {} families, {} atoms)",
+        out.display(),
+        bytes.len(),
+        palette.families().len(),
+        palette.atom_counts().iter().sum::<usize>()
+    );
+    Ok(())
+}
+
+/// The default families' voicings and the voice clips of set `set` (0: building, 1: checking).
+fn soundfont_scene(
+    voice: VoiceSourceArg,
+    set: usize,
+) -> Result<(Vec<FamilyVoicing>, ClipBank, String)> {
+    let voicings = general_midi_voicings();
+    let mut bank = ClipBank::new(voicings.len());
+    let mut source = String::from("choir programs 52-54");
+    if voice == VoiceSourceArg::Espeak {
+        let clips = espeak_clips(set)?;
+        let voice_family = voicings
+            .iter()
+            .position(|v| v.family == "voice")
+            .unwrap_or(12);
+        let version = Command::new("espeak-ng")
+            .arg("--version")
+            .output()
+            .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_owned())
+            .unwrap_or_default();
+        source = format!(
+            "{} espeak-ng clips ({version}) and choir programs 52-54",
+            clips.len()
+        );
+        for c in clips {
+            bank.add(voice_family, c);
+        }
+    }
+    Ok((voicings, bank, source))
+}
+
+fn render(a: &RenderArgs) -> Result<()> {
+    let renderer = load_soundfont(&a.soundfont)?;
+    let (voicings, bank, voice_source) = soundfont_scene(a.voice, 0)?;
+    let composer = Composer::new(voicings, bank.counts(), 0.6);
+    let (families, sections) = default_families();
+    let plan = plan_from(&a.build);
+    let provenance = Provenance {
+        weft_version: env!("CARGO_PKG_VERSION").to_owned(),
+        source: format!(
+            "soundfont: {}; voice: {voice_source}",
+            renderer.soundfont_name()
+        ),
+        seed: plan.seed,
+        notes: vec![
+            format!(
+                "note studies every {} keys at velocities {:?}; {} atoms per family",
+                plan.study_key_step, plan.study_velocities, plan.learn.atoms
+            ),
+            format!(
+                "{} training mixes of {} s, 1-{} families at {:?} dB; presence model with {} hidden units",
+                plan.training_mixes,
+                plan.mix_s,
+                plan.max_families,
+                plan.gain_range_db,
+                plan.presence.hidden
+            ),
+        ],
+    };
+    let palette = build_palette(
+        "Weft default",
+        families,
+        sections,
+        Some(&renderer),
+        &composer,
+        &bank,
+        &plan,
+        provenance,
+        &progress,
+    )?;
+    write_palette(&palette, &a.out)
+}
+
+/// Runs `weft palette check` and returns its report.
+pub fn check(a: &CheckArgs) -> Result<CheckReport> {
+    let palette = match &a.palette {
+        Some(p) => {
+            let bytes = std::fs::read(p).with_context(|| format!("cannot read {}", p.display()))?;
+            Palette::from_bytes(&bytes)
+                .with_context(|| format!("{} is not a usable palette", p.display()))?
+        }
+        None => Palette::default_palette(),
+    };
+    let gm = general_midi_voicings();
+    // Voicings aligned with the palette's families: recordings first, then the SoundFont.
+    let (folder_names, folder_bank) = match &a.folders {
+        Some(f) => {
+            let (n, b) = read_folders(f)?;
+            (n, Some(b))
+        }
+        None => (Vec::new(), None),
+    };
+    let nf = palette.families().len();
+    let mut voicings = Vec::new();
+    let mut bank = ClipBank::new(nf);
+    let mut needs_soundfont = false;
+    let espeak = if a.voice == VoiceSourceArg::Espeak
+        && palette.family_index("voice").is_some()
+        && folder_bank.is_none()
+    {
+        Some(espeak_clips(1)?)
+    } else {
+        None
+    };
+    for (f, fam) in palette.families().iter().enumerate() {
+        if let (Some(i), Some(b)) = (
+            folder_names.iter().position(|n| *n == fam.name),
+            &folder_bank,
+        ) {
+            for c in b.family(i) {
+                bank.add(f, c.clone());
+            }
+            voicings.push(clip_voicing(&fam.name));
+        } else if let Some(v) = gm.iter().find(|v| v.family == fam.name) {
+            needs_soundfont = true;
+            if fam.name == "voice"
+                && let Some(clips) = &espeak
+            {
+                for c in clips {
+                    bank.add(f, c.clone());
+                }
+            }
+            voicings.push(v.clone());
+        } else {
+            bail!(
+                "family '{}' has neither recordings (--folders) nor a General MIDI voicing",
+                fam.name
+            );
+        }
+    }
+    let renderer = if needs_soundfont {
+        Some(load_soundfont(&a.soundfont)?)
+    } else {
+        None
+    };
+    let composer = Composer::new(
+        voicings,
+        bank.counts(),
+        if a.folders.is_some() { 1.0 } else { 0.6 },
+    );
+    let plan = CheckPlan {
+        sample_rate_hz: RENDER_RATE_HZ,
+        mixes: a.mixes,
+        mix_s: a.mix_seconds,
+        seed: a.seed,
+        threads: threads(a.threads),
+        ..CheckPlan::default()
+    };
+    let mode = match a.mode {
+        ModeArg::TwoStage => SharesMode::TwoStage,
+        ModeArg::Nmf => SharesMode::NmfAlone,
+        ModeArg::KnownPresence => SharesMode::KnownPresence,
+    };
+    Ok(check_palette(
+        &palette,
+        renderer.as_ref(),
+        &composer,
+        &bank,
+        &plan,
+        mode,
+    )?)
+}
+
+fn print_level(title: &str, l: &weft_engine::shares::check::LevelScore) {
+    println!(
+        "{title:<24} {:>7} {:>7} {:>7} {:>5} {:>5} {:>5} {:>8} {:>6}",
+        "windows", "TV %", "MAE pp", "P", "R", "F1", "NMF MAE", "NMF F1"
+    );
+    for g in &l.groups {
+        println!(
+            "{:<24} {:>7} {:>7.1} {:>7.1} {:>5.2} {:>5.2} {:>5.2} {:>8.1} {:>6.2}",
+            g.name,
+            g.windows_present,
+            g.tv_pct,
+            g.mae_pp,
+            g.precision,
+            g.recall,
+            g.f1,
+            g.nmf_mae_pp,
+            g.nmf_f1
+        );
+    }
+    println!(
+        "{:<24} {:>7} {:>7.1} {:>7.1} {:>5.2} {:>5.2} {:>5.2} {:>8.1} {:>6.2}",
+        "all",
+        "",
+        l.tv_pct,
+        l.present_mae_pp,
+        l.precision,
+        l.recall,
+        l.f1,
+        l.nmf_present_mae_pp,
+        l.nmf_f1
+    );
+    println!(
+        "energy misattributed: {:.1} % (NMF alone {:.1} %, uniform {:.1} %)\n",
+        l.tv_pct, l.nmf_tv_pct, l.uniform_tv_pct
+    );
+}
+
+fn print_report(r: &CheckReport) {
+    println!("{} held-out mixes, {} windows of 1 s\n", r.mixes, r.windows);
+    print_level("family", &r.family);
+    print_level("section", &r.section);
+    println!("mean unexplained share: {:.3}", r.unexplained_mean);
+    println!(
+        "realtime factor: {:.0}x (both stages and the NMF-alone baseline, one thread: {:.2} % of one core)",
+        r.realtime_factor,
+        100.0 / r.realtime_factor.max(1e-9)
+    );
+}

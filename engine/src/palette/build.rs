@@ -1,0 +1,430 @@
+//! Building palettes end to end — from a SoundFont (`weft palette render`, `cargo xtask
+//! palette`) or from recordings (`weft palette learn`) — and checking them on held-out mixes
+//! (`weft palette check`). The engine does no file I/O: the caller hands in a loaded
+//! [`SoundFontRenderer`] and decoded clips.
+//!
+//! Work is spread over `threads` threads (scoped, std only); results do not depend on the
+//! number of threads.
+
+use super::{AnalysisSpec, Family, LearnSettings, Palette, PaletteError, Provenance};
+use super::{learn_family_atoms, stacked_columns};
+use crate::scene::{ClipBank, Composer, Mix, MixSpec, SceneError, SceneRng, SoundFontRenderer};
+use crate::shares::check::{CheckReport, MixRecord, evaluate_mix, known_presence_residuals, presence_rows};
+use crate::shares::presence::feature_count;
+use crate::shares::{PresenceTraining, SharesError, SharesMode, train_presence};
+use thiserror::Error;
+
+/// Why a palette could not be built or checked.
+#[derive(Debug, Error)]
+pub enum BuildError {
+    /// Rendering failed.
+    #[error("rendering failed")]
+    Scene(#[from] SceneError),
+    /// The palette's analysis could not run.
+    #[error("analysis failed")]
+    Shares(#[from] SharesError),
+    /// The result is not a valid palette.
+    #[error("the palette is not valid")]
+    Palette(#[from] PaletteError),
+    /// A family has no audible material to learn from.
+    #[error("family '{family}' has no audible material to learn atoms from")]
+    NoMaterial {
+        /// The family.
+        family: String,
+    },
+    /// A mix needs the SoundFont but none was given.
+    #[error("family '{family}' is voiced by the SoundFont, but no SoundFont was given")]
+    NoSoundFont {
+        /// The family.
+        family: String,
+    },
+}
+
+/// Everything that decides how a palette is built.
+#[derive(Debug, Clone, PartialEq)]
+pub struct BuildPlan {
+    /// Rendering and analysis sample rate, Hz.
+    pub sample_rate_hz: u32,
+    /// The palette's analysis settings.
+    pub analysis: AnalysisSpec,
+    /// Atom learning.
+    pub learn: LearnSettings,
+    /// Note studies: every `study_key_step`-th key.
+    pub study_key_step: usize,
+    /// Note studies: velocities played.
+    pub study_velocities: Vec<u8>,
+    /// Note studies: note length and gap, seconds.
+    pub study_note_s: (f64, f64),
+    /// Training mixes for the presence model (0: no presence model).
+    pub training_mixes: usize,
+    /// Length of each mix, seconds.
+    pub mix_s: f64,
+    /// Most families in a mix.
+    pub max_families: usize,
+    /// Range of family gains, dB.
+    pub gain_range_db: (f64, f64),
+    /// How often a family with clips is sounded by them.
+    pub clip_probability: f64,
+    /// Presence-model training.
+    pub presence: PresenceTraining,
+    /// Seed of every random choice.
+    pub seed: u64,
+    /// Worker threads.
+    pub threads: usize,
+}
+
+impl Default for BuildPlan {
+    fn default() -> Self {
+        Self {
+            sample_rate_hz: 48_000,
+            analysis: AnalysisSpec::DEFAULT,
+            learn: LearnSettings::default(),
+            study_key_step: 2,
+            study_velocities: vec![40, 75, 110],
+            study_note_s: (0.6, 0.25),
+            training_mixes: 1500,
+            mix_s: 3.0,
+            max_families: 5,
+            gain_range_db: (-24.0, 0.0),
+            clip_probability: 0.6,
+            presence: PresenceTraining::default(),
+            seed: 1,
+            threads: 2,
+        }
+    }
+}
+
+/// How held-out mixes are drawn for a check.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CheckPlan {
+    /// Rendering sample rate, Hz.
+    pub sample_rate_hz: u32,
+    /// Number of mixes.
+    pub mixes: usize,
+    /// Length of each mix, seconds.
+    pub mix_s: f64,
+    /// Scoring window, seconds.
+    pub window_s: f64,
+    /// Most families in a mix.
+    pub max_families: usize,
+    /// Range of family gains, dB.
+    pub gain_range_db: (f64, f64),
+    /// How often a family with clips is sounded by them.
+    pub clip_probability: f64,
+    /// Seed (mixes are drawn from a stream no palette build uses).
+    pub seed: u64,
+    /// Worker threads.
+    pub threads: usize,
+}
+
+impl Default for CheckPlan {
+    fn default() -> Self {
+        Self {
+            sample_rate_hz: 48_000,
+            mixes: 60,
+            mix_s: 8.0,
+            window_s: 1.0,
+            max_families: 5,
+            gain_range_db: (-24.0, 0.0),
+            clip_probability: 0.6,
+            seed: 1,
+            threads: 2,
+        }
+    }
+}
+
+/// Training mixes the unexplained tolerance is calibrated on.
+const CALIBRATION_MIXES: usize = 40;
+/// The energy-weighted quantile of known material's residual taken as the tolerance.
+const TOLERANCE_QUANTILE: f64 = 0.9;
+
+/// Energy-weighted quantile `q` of (weight, value) pairs (0 for none).
+fn weighted_quantile(pairs: &mut [(f64, f64)], q: f64) -> f64 {
+    pairs.sort_by(|a, b| a.1.total_cmp(&b.1));
+    let total: f64 = pairs.iter().map(|p| p.0).sum();
+    let mut acc = 0.0;
+    for &(w, v) in pairs.iter() {
+        acc += w;
+        if acc >= q * total {
+            return v;
+        }
+    }
+    pairs.last().map_or(0.0, |p| p.1)
+}
+
+/// Seed streams, so training and checking mixes never coincide whatever seeds are given.
+const TRAIN_STREAM: u64 = 0x7261_696E;
+const CHECK_STREAM: u64 = 0x6368_6563;
+
+/// Runs `job(i)` for `i in 0..n` on `threads` threads (each takes the next index when it is
+/// free), results in order.
+fn parallel<T: Send>(n: usize, threads: usize, job: impl Fn(usize) -> T + Sync) -> Vec<T> {
+    use std::sync::Mutex;
+    use std::sync::atomic::{AtomicUsize, Ordering};
+    let threads = threads.clamp(1, 64).min(n.max(1));
+    let next = AtomicUsize::new(0);
+    let slots: Mutex<Vec<Option<T>>> = Mutex::new((0..n).map(|_| None).collect());
+    std::thread::scope(|s| {
+        for _ in 0..threads {
+            s.spawn(|| {
+                loop {
+                    let i = next.fetch_add(1, Ordering::Relaxed);
+                    if i >= n {
+                        break;
+                    }
+                    let r = job(i);
+                    let mut guard = slots.lock().unwrap_or_else(std::sync::PoisonError::into_inner);
+                    guard[i] = Some(r);
+                }
+            });
+        }
+    });
+    slots
+        .into_inner()
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
+        .into_iter()
+        .flatten()
+        .collect()
+}
+
+/// Renders one random mix of `candidates` families.
+#[allow(clippy::too_many_arguments)]
+pub fn render_mix(
+    renderer: Option<&SoundFontRenderer>,
+    composer: &Composer,
+    clips: &ClipBank,
+    seed: u64,
+    candidates: &[usize],
+    max_families: usize,
+    gain_range_db: (f64, f64),
+    mix_s: f64,
+    sample_rate_hz: u32,
+) -> Result<Mix, BuildError> {
+    let spec = MixSpec::random(seed, candidates, max_families, gain_range_db);
+    let score = composer.compose(seed, &spec.families, mix_s);
+    let n = (mix_s * f64::from(sample_rate_hz)).round() as usize;
+    let mut stems: Vec<(usize, Vec<f32>)> = Vec::new();
+    for part in &score.parts {
+        let x = match renderer {
+            Some(r) => r.render_part(part, mix_s, clips)?,
+            None if part.sound == crate::scene::PartSound::Clips => {
+                // Clips need no SoundFont: place them with a renderer-free path.
+                crate::scene::place_clips(part, mix_s, sample_rate_hz, clips)
+            }
+            None => {
+                return Err(BuildError::NoSoundFont {
+                    family: composer.voicings()[part.family].family.clone(),
+                });
+            }
+        };
+        match stems.iter_mut().find(|(f, _)| *f == part.family) {
+            Some((_, s)) => s.iter_mut().zip(&x).for_each(|(a, b)| *a += b),
+            None => stems.push((part.family, x)),
+        }
+    }
+    let gains: Vec<f64> = stems
+        .iter()
+        .map(|(f, _)| {
+            spec.families
+                .iter()
+                .position(|g| g == f)
+                .map_or(0.0, |i| spec.gains_db[i])
+        })
+        .collect();
+    for (_, s) in &mut stems {
+        s.resize(n, 0.0);
+    }
+    let members: Vec<(usize, &[f32])> = stems.iter().map(|(f, s)| (*f, s.as_slice())).collect();
+    Ok(Mix::new(&members, &gains, sample_rate_hz))
+}
+
+/// The material each family's atoms are learned from: its note study rendered from the
+/// SoundFont (when it has programs) followed by all its clips.
+fn family_material(
+    renderer: Option<&SoundFontRenderer>,
+    composer: &Composer,
+    clips: &ClipBank,
+    family: usize,
+    plan: &BuildPlan,
+) -> Result<Vec<f32>, BuildError> {
+    let mut signal = Vec::new();
+    if let Some(r) = renderer
+        && let Some(study) = composer.study(
+            family,
+            plan.study_key_step,
+            &plan.study_velocities,
+            plan.study_note_s.0,
+            plan.study_note_s.1,
+        )
+    {
+        for part in &study.parts {
+            let x = r.render_part(part, study.duration_s, clips)?;
+            if signal.is_empty() {
+                signal = x;
+            } else {
+                signal.iter_mut().zip(&x).for_each(|(a, b)| *a += b);
+            }
+        }
+    }
+    for clip in clips.family(family) {
+        signal.extend_from_slice(clip);
+        signal.extend(std::iter::repeat_n(0.0, (0.2 * f64::from(plan.sample_rate_hz)) as usize));
+    }
+    Ok(signal)
+}
+
+/// Builds a palette: learns every family's atoms from its material (note studies from the
+/// SoundFont and/or clips), then renders `plan.training_mixes` mixes and trains the presence
+/// model on them. `families[f]` is voiced by `composer.voicings()[f]`. `progress` is told what
+/// is happening.
+#[allow(clippy::too_many_arguments)] // Each input is a distinct concern; a struct would only rename them.
+pub fn build_palette(
+    name: &str,
+    families: Vec<Family>,
+    sections: Vec<String>,
+    renderer: Option<&SoundFontRenderer>,
+    composer: &Composer,
+    clips: &ClipBank,
+    plan: &BuildPlan,
+    provenance: Provenance,
+    progress: &(dyn Fn(&str) + Sync),
+) -> Result<Palette, BuildError> {
+    let nf = families.len();
+    let spec = plan.analysis;
+    let dims = spec.dims();
+    let sr = f64::from(plan.sample_rate_hz);
+    progress(&format!("learning atoms of {nf} families"));
+    let learned = parallel(nf, plan.threads, |f| -> Result<Vec<f32>, BuildError> {
+        let material = family_material(renderer, composer, clips, f, plan)?;
+        let columns = stacked_columns(&material, sr, &spec).map_err(SharesError::from)?;
+        let mut learn = plan.learn;
+        learn.seed = SceneRng::derive(plan.seed, 1000 + f as u64).next_u64();
+        let atoms = learn_family_atoms(&columns, dims, &learn).ok_or_else(|| BuildError::NoMaterial {
+            family: families[f].name.clone(),
+        })?;
+        progress(&format!(
+            "  {}: {:.0} s of material, {} columns",
+            families[f].name,
+            material.len() as f64 / sr,
+            columns.len() / dims
+        ));
+        Ok(atoms)
+    });
+    let mut atoms = Vec::new();
+    let mut counts = Vec::new();
+    for a in learned {
+        let a = a?;
+        counts.push(a.len() / dims);
+        atoms.extend(a);
+    }
+    let palette = Palette::new(
+        name.to_owned(),
+        families,
+        sections,
+        spec,
+        counts,
+        atoms,
+        None,
+        provenance,
+    )?;
+    if plan.training_mixes == 0 {
+        return Ok(palette);
+    }
+    progress(&format!("rendering {} training mixes for the presence model", plan.training_mixes));
+    let candidates: Vec<usize> = (0..nf).collect();
+    let rows = parallel(plan.training_mixes, plan.threads, |i| -> Result<(Vec<f32>, Vec<bool>), BuildError> {
+        let seed = SceneRng::derive(plan.seed ^ TRAIN_STREAM, i as u64).next_u64();
+        let mix = render_mix(
+            renderer,
+            composer,
+            clips,
+            seed,
+            &candidates,
+            plan.max_families,
+            plan.gain_range_db,
+            plan.mix_s,
+            plan.sample_rate_hz,
+        )?;
+        let mut rows = Vec::new();
+        let mut labels = Vec::new();
+        presence_rows(&palette, &mix, &mut rows, &mut labels)?;
+        Ok((rows, labels))
+    });
+    let mut x = Vec::new();
+    let mut y = Vec::new();
+    for r in rows {
+        let (a, b) = r?;
+        x.extend(a);
+        y.extend(b);
+    }
+    let features = feature_count(nf, palette.atom_counts().iter().sum());
+    progress(&format!(
+        "training the presence model on {} rows ({} features, {} hidden units)",
+        x.len() / features,
+        features,
+        plan.presence.hidden
+    ));
+    let mut training = plan.presence;
+    training.seed = SceneRng::derive(plan.seed, 77).next_u64();
+    let model = train_presence(&x, features, &y, nf, &training);
+    let palette = palette.with_presence(Some(model))?;
+    // Calibrate the unexplained tolerance: the energy-weighted quantile TOLERANCE_QUANTILE of
+    // the residual the amount stage leaves on training mixes of known families.
+    let calib = palette.clone().with_unexplained_tolerance(0.0)?;
+    let n = plan.training_mixes.min(CALIBRATION_MIXES);
+    let residuals = parallel(n, plan.threads, |i| -> Result<Vec<(f64, f64)>, BuildError> {
+        let seed = SceneRng::derive(plan.seed ^ TRAIN_STREAM, i as u64).next_u64();
+        let mix = render_mix(
+            renderer,
+            composer,
+            clips,
+            seed,
+            &candidates,
+            plan.max_families,
+            plan.gain_range_db,
+            plan.mix_s,
+            plan.sample_rate_hz,
+        )?;
+        Ok(known_presence_residuals(&calib, &mix)?)
+    });
+    let mut all = Vec::new();
+    for r in residuals {
+        all.extend(r?);
+    }
+    let tolerance = weighted_quantile(&mut all, TOLERANCE_QUANTILE).clamp(0.0, 0.9);
+    progress(&format!("unexplained tolerance: {tolerance:.3} (quantile {TOLERANCE_QUANTILE} of {} columns)", all.len()));
+    Ok(palette.with_unexplained_tolerance(tolerance)?)
+}
+
+/// Renders `plan.mixes` held-out mixes of the palette's families and scores the palette on
+/// them (two stages, and the baselines). Families are matched to voicings by name; families
+/// with no voicing are left out of the mixes.
+pub fn check_palette(
+    palette: &Palette,
+    renderer: Option<&SoundFontRenderer>,
+    composer: &Composer,
+    clips: &ClipBank,
+    plan: &CheckPlan,
+    mode: SharesMode,
+) -> Result<CheckReport, BuildError> {
+    let candidates: Vec<usize> = (0..palette.families().len())
+        .filter(|&f| f < composer.voicings().len())
+        .collect();
+    let records = parallel(plan.mixes, plan.threads, |i| -> Result<MixRecord, BuildError> {
+        let seed = SceneRng::derive(plan.seed ^ CHECK_STREAM, i as u64).next_u64();
+        let mix = render_mix(
+            renderer,
+            composer,
+            clips,
+            seed,
+            &candidates,
+            plan.max_families,
+            plan.gain_range_db,
+            plan.mix_s,
+            plan.sample_rate_hz,
+        )?;
+        Ok(evaluate_mix(palette, &mix, plan.window_s, mode)?)
+    });
+    let records: Result<Vec<MixRecord>, BuildError> = records.into_iter().collect();
+    Ok(CheckReport::new(palette, &records?))
+}

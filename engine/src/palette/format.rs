@@ -1,0 +1,325 @@
+//! The palette file: a small binary container with a JSON header.
+//!
+//! | bytes | content |
+//! |---|---|
+//! | 8 | magic `WEFTPAL\0` |
+//! | 4 | format version, u32 little-endian ([`FORMAT_VERSION`]) |
+//! | 4 | header length `n`, u32 little-endian, at most [`MAX_HEADER_BYTES`] |
+//! | n | header, UTF-8 JSON: name, families, sections, analysis, atom counts, presence model, provenance |
+//! | 8 | number of atom values `m`, u64 little-endian (must equal Σ counts × bands × stack) |
+//! | 4·m | atom values, f32 little-endian, family by family, atom by atom |
+//!
+//! Nothing may follow. Every size is checked against the bytes left and against a limit before
+//! anything is allocated, so a hostile file costs at most its own size.
+
+use super::{AnalysisSpec, Family, Palette, PaletteError, Provenance};
+use crate::shares::PresenceModel;
+use serde::{Deserialize, Serialize};
+
+/// The first eight bytes of every palette file.
+pub const MAGIC: &[u8; 8] = b"WEFTPAL\0";
+/// The format version this build writes and reads.
+pub const FORMAT_VERSION: u32 = 1;
+/// The largest header accepted, bytes.
+pub const MAX_HEADER_BYTES: u64 = 8 << 20;
+/// The largest palette file accepted, bytes.
+pub const MAX_FILE_BYTES: u64 = 64 << 20;
+
+#[derive(Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct Header {
+    name: String,
+    families: Vec<Family>,
+    sections: Vec<String>,
+    analysis: AnalysisSpec,
+    atom_counts: Vec<usize>,
+    presence: Option<PresenceModel>,
+    provenance: Provenance,
+}
+
+struct Reader<'a> {
+    bytes: &'a [u8],
+    at: usize,
+}
+
+impl<'a> Reader<'a> {
+    fn take(&mut self, n: u64, what: &'static str) -> Result<&'a [u8], PaletteError> {
+        let left = (self.bytes.len() - self.at) as u64;
+        if n > left {
+            return Err(PaletteError::Truncated {
+                what,
+                needed: n,
+                available: left,
+            });
+        }
+        let n = n as usize;
+        let s = &self.bytes[self.at..self.at + n];
+        self.at += n;
+        Ok(s)
+    }
+
+    fn array<const N: usize>(&mut self, what: &'static str) -> Result<[u8; N], PaletteError> {
+        let s = self.take(N as u64, what)?;
+        let mut a = [0u8; N];
+        a.copy_from_slice(s);
+        Ok(a)
+    }
+}
+
+impl Palette {
+    /// Encodes the palette as a palette file.
+    pub fn to_bytes(&self) -> Vec<u8> {
+        let header = Header {
+            name: self.name.clone(),
+            families: self.families.clone(),
+            sections: self.sections.clone(),
+            analysis: self.analysis,
+            atom_counts: self.atom_counts.clone(),
+            presence: self.presence.clone(),
+            provenance: self.provenance.clone(),
+        };
+        // Serialising plain data with string keys cannot fail.
+        let json = serde_json::to_vec(&header).unwrap_or_default();
+        let mut out = Vec::with_capacity(24 + json.len() + 4 * self.atoms.len());
+        out.extend_from_slice(MAGIC);
+        out.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
+        out.extend_from_slice(&(json.len() as u32).to_le_bytes());
+        out.extend_from_slice(&json);
+        out.extend_from_slice(&(self.atoms.len() as u64).to_le_bytes());
+        for v in &self.atoms {
+            out.extend_from_slice(&v.to_le_bytes());
+        }
+        out
+    }
+
+    /// Decodes and validates a palette file.
+    pub fn from_bytes(bytes: &[u8]) -> Result<Self, PaletteError> {
+        if bytes.len() as u64 > MAX_FILE_BYTES {
+            return Err(PaletteError::Limit {
+                what: "palette file size (bytes)",
+                value: bytes.len() as u64,
+                max: MAX_FILE_BYTES,
+            });
+        }
+        let mut r = Reader { bytes, at: 0 };
+        if bytes.len() < MAGIC.len() || &r.array::<8>("magic")? != MAGIC {
+            return Err(PaletteError::NotAPalette);
+        }
+        let version = u32::from_le_bytes(r.array::<4>("version")?);
+        if version != FORMAT_VERSION {
+            return Err(PaletteError::Version {
+                found: version,
+                supported: FORMAT_VERSION,
+            });
+        }
+        let header_len = u64::from(u32::from_le_bytes(r.array::<4>("header length")?));
+        if header_len > MAX_HEADER_BYTES {
+            return Err(PaletteError::Limit {
+                what: "palette header size (bytes)",
+                value: header_len,
+                max: MAX_HEADER_BYTES,
+            });
+        }
+        let json = r.take(header_len, "header")?;
+        let header: Header =
+            serde_json::from_slice(json).map_err(|source| PaletteError::Header { source })?;
+        let count = u64::from_le_bytes(r.array::<8>("atom count")?);
+        let max_values = (MAX_FILE_BYTES / 4).min((bytes.len() as u64).saturating_sub(r.at as u64) / 4 + 1);
+        if count > max_values {
+            return Err(PaletteError::Limit {
+                what: "atom values",
+                value: count,
+                max: max_values,
+            });
+        }
+        let raw = r.take(count * 4, "atoms")?;
+        let atoms: Vec<f32> = raw
+            .chunks_exact(4)
+            .map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]))
+            .collect();
+        let extra = (bytes.len() - r.at) as u64;
+        if extra > 0 {
+            return Err(PaletteError::TrailingBytes { extra });
+        }
+        Palette::new(
+            header.name,
+            header.families,
+            header.sections,
+            header.analysis,
+            header.atom_counts,
+            atoms,
+            header.presence,
+            header.provenance,
+        )
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::palette::{AnalysisSpec, MAX_FAMILIES};
+    use crate::scene::SceneRng;
+    use crate::shares::presence::{PresenceTraining, feature_count, train_presence};
+
+    fn small(seed: u64, with_presence: bool) -> Palette {
+        let mut rng = SceneRng::new(seed);
+        let analysis = AnalysisSpec {
+            bands: 16,
+            stack: 2,
+            ..AnalysisSpec::DEFAULT
+        };
+        let counts = vec![2, 3];
+        let atoms: Vec<f32> = (0..5 * analysis.dims()).map(|_| rng.unit() as f32 + 0.01).collect();
+        let presence = with_presence.then(|| {
+            let d = feature_count(2, 5);
+            let rows: Vec<f32> = (0..40 * d).map(|_| rng.unit() as f32).collect();
+            let labels: Vec<bool> = (0..80).map(|i| i % 3 == 0).collect();
+            let opts = PresenceTraining {
+                hidden: 4,
+                epochs: 2,
+                ..PresenceTraining::default()
+            };
+            train_presence(&rows, d, &labels, 2, &opts)
+        });
+        Palette::new(
+            "test".into(),
+            vec![
+                Family {
+                    name: "low".into(),
+                    section: 0,
+                },
+                Family {
+                    name: "high".into(),
+                    section: 1,
+                },
+            ],
+            vec!["a".into(), "b".into()],
+            analysis,
+            counts,
+            atoms,
+            presence,
+            Provenance {
+                weft_version: "0".into(),
+                source: "unit test".into(),
+                seed,
+                notes: vec![],
+            },
+        )
+        .expect("valid")
+    }
+
+    #[test]
+    fn round_trip_is_exact() {
+        for presence in [false, true] {
+            let p = small(3, presence);
+            let bytes = p.to_bytes();
+            let q = Palette::from_bytes(&bytes).expect("reads back");
+            assert_eq!(p, q);
+            assert_eq!(bytes, q.to_bytes());
+        }
+    }
+
+    #[test]
+    fn damaged_files_are_refused_with_reasons() {
+        let good = small(4, true).to_bytes();
+        assert!(matches!(Palette::from_bytes(b"RIFF1234"), Err(PaletteError::NotAPalette)));
+        assert!(matches!(Palette::from_bytes(&[]), Err(PaletteError::NotAPalette)));
+        let mut v = good.clone();
+        v[8] = 9;
+        assert!(matches!(
+            Palette::from_bytes(&v),
+            Err(PaletteError::Version { found: 9, supported: 1 })
+        ));
+        for cut in [10, 20, good.len() - 1] {
+            assert!(
+                matches!(Palette::from_bytes(&good[..cut]), Err(PaletteError::Truncated { .. })),
+                "cut at {cut}"
+            );
+        }
+        let mut v = good.clone();
+        v.push(0);
+        assert!(matches!(Palette::from_bytes(&v), Err(PaletteError::TrailingBytes { extra: 1 })));
+        // A hostile header length is refused before anything is allocated.
+        let mut v = good.clone();
+        v[12..16].copy_from_slice(&u32::MAX.to_le_bytes());
+        assert!(matches!(Palette::from_bytes(&v), Err(PaletteError::Limit { .. })));
+        // A hostile atom count too.
+        let header_len = u32::from_le_bytes([good[12], good[13], good[14], good[15]]) as usize;
+        let mut v = good.clone();
+        v[16 + header_len..24 + header_len].copy_from_slice(&u64::MAX.to_le_bytes());
+        assert!(matches!(Palette::from_bytes(&v), Err(PaletteError::Limit { .. })));
+        // A NaN atom value.
+        let mut v = good.clone();
+        let at = 24 + header_len;
+        v[at..at + 4].copy_from_slice(&f32::NAN.to_le_bytes());
+        assert!(matches!(
+            Palette::from_bytes(&v),
+            Err(PaletteError::Invalid { field: "atoms", .. })
+        ));
+    }
+
+    fn with_header_edit(edit: impl Fn(&mut serde_json::Value)) -> Result<Palette, PaletteError> {
+        let good = small(5, true).to_bytes();
+        let header_len = u32::from_le_bytes([good[12], good[13], good[14], good[15]]) as usize;
+        let mut header: serde_json::Value =
+            serde_json::from_slice(&good[16..16 + header_len]).expect("json");
+        edit(&mut header);
+        let json = serde_json::to_vec(&header).expect("json");
+        let mut v = good[..12].to_vec();
+        v.extend_from_slice(&(json.len() as u32).to_le_bytes());
+        v.extend_from_slice(&json);
+        v.extend_from_slice(&good[16 + header_len..]);
+        Palette::from_bytes(&v)
+    }
+
+    #[test]
+    fn invalid_headers_are_refused_naming_the_field() {
+        assert!(with_header_edit(|_| {}).is_ok());
+        type Edit = Box<dyn Fn(&mut serde_json::Value)>;
+        let cases: Vec<(&str, Edit)> = vec![
+            ("families", Box::new(|h| h["families"][1]["name"] = "low".into())),
+            ("families", Box::new(|h| h["families"][1]["section"] = 7.into())),
+            ("sections", Box::new(|h| h["sections"][1] = "a".into())),
+            ("name", Box::new(|h| h["name"] = "".into())),
+            ("analysis.stack", Box::new(|h| h["analysis"]["stack"] = 50.into())),
+            ("analysis.beta", Box::new(|h| h["analysis"]["beta"] = 3.0.into())),
+            ("atoms", Box::new(|h| h["atom_counts"][0] = 3.into())),
+            ("presence", Box::new(|h| h["presence"]["schema"] = "other".into())),
+            ("presence", Box::new(|h| h["presence"]["thresholds"][0] = 2.0.into())),
+        ];
+        for (field, edit) in cases {
+            match with_header_edit(edit) {
+                Err(PaletteError::Invalid { field: f, .. }) => assert_eq!(f, field),
+                other => panic!("{field}: {other:?}"),
+            }
+        }
+        // Unknown fields and wrong types are refused by the schema.
+        assert!(matches!(
+            with_header_edit(|h| h["extra"] = 1.into()),
+            Err(PaletteError::Header { .. })
+        ));
+        assert!(matches!(
+            with_header_edit(|h| h["families"] = "x".into()),
+            Err(PaletteError::Header { .. })
+        ));
+        // Too many families is a limit.
+        let r = with_header_edit(|h| {
+            let f = h["families"][0].clone();
+            h["families"] = serde_json::Value::Array(vec![f; MAX_FAMILIES + 1]);
+        });
+        assert!(matches!(r, Err(PaletteError::Limit { what: "families", .. })), "{r:?}");
+    }
+
+    #[test]
+    fn the_built_in_palette_is_valid_and_names_the_vocabulary() {
+        let p = Palette::default_palette();
+        let names: Vec<&str> = p.families().iter().map(|f| f.name.as_str()).collect();
+        let want: Vec<&str> = crate::palette::DEFAULT_FAMILIES.iter().map(|f| f.0).collect();
+        assert_eq!(names, want);
+        assert_eq!(p.sections(), crate::palette::DEFAULT_SECTIONS);
+        for (f, (_, section)) in p.families().iter().zip(crate::palette::DEFAULT_FAMILIES) {
+            assert_eq!(p.sections()[f.section], section, "{}", f.name);
+        }
+        assert!(p.presence().is_some());
+    }
+}

@@ -1,0 +1,709 @@
+//! The shares estimator: per-frame power spectra in, each family's share of the energy (plus
+//! *unexplained*) out, once per column (≥ 10 Hz), in two stages — presence, then amount.
+//!
+//! Per column:
+//! 1. the last `stack` columns are stacked into `v`;
+//! 2. *NMF alone*: activations of the whole dictionary for `v` (warm-started from the previous
+//!    column), which give each family's energy `e_f = Σ_{k∈f} h_k` (atoms sum to 1);
+//! 3. *presence*: the palette's presence model reads ~0.75 s of those statistics and decides
+//!    which families sound;
+//! 4. *amount*: activations again, with only the present families' atoms (started from step 2's);
+//! 5. *unexplained* `u` = the part of the column's energy the reconstruction misses beyond the
+//!    palette's tolerance, `max(r − τ, 0) / (1 − τ)` with `r = Σ_d max(v_d − (Wh)_d, 0) / Σ_d v_d`;
+//!    each family's share is `(1 − u) · e_f / Σ_g e_g`, so the shares and *unexplained* sum to 1;
+//! 6. smoothing: an energy-weighted exponential average with the response time
+//!    (`s̄ = EMA(E·s) / EMA(E)`, `E` the column energy), which is unchanged by any gain.
+//!
+//! The same code runs live and offline: the plugin's analysis thread feeds frames as they come,
+//! the command-line tool feeds a whole file, and neither allocates per frame.
+
+use super::columns::ColumnStream;
+use super::nmf::{ActivationSolver, Dictionary};
+use super::presence::{PresenceContext, PresenceModel};
+use crate::bands::BandsError;
+use crate::frames::FrameConfig;
+use crate::palette::{MAX_FAMILIES, MAX_SECTIONS, Palette};
+use thiserror::Error;
+
+/// Columns quieter than this level (dBFS, RMS over the bands' range) are "no signal".
+pub const NO_SIGNAL_DB: f64 = -100.0;
+/// The default response time of the smoothing, ms.
+pub const DEFAULT_RESPONSE_MS: f64 = 300.0;
+/// The longest response time accepted, ms.
+pub const MAX_RESPONSE_MS: f64 = 60_000.0;
+
+/// Why a shares estimator could not be built.
+#[derive(Debug, Clone, PartialEq, Error)]
+pub enum SharesError {
+    /// The palette's band layout cannot be built at this rate and frame length.
+    #[error("the palette's bands cannot be built here")]
+    Bands(#[from] BandsError),
+    /// The response time is negative, not finite or above [`MAX_RESPONSE_MS`].
+    #[error("response time {response_ms} ms is outside 0..={max} ms", max = MAX_RESPONSE_MS)]
+    ResponseTime {
+        /// The refused value, ms.
+        response_ms: f64,
+    },
+    /// The sample rate is not positive and finite.
+    #[error("sample rate {sample_rate_hz} Hz is not positive and finite")]
+    SampleRate {
+        /// The refused rate, Hz.
+        sample_rate_hz: f64,
+    },
+}
+
+/// Which stages run.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum SharesMode {
+    /// Presence, then amount over the present families (the palette's presence model; NMF
+    /// alone when the palette has none).
+    #[default]
+    TwoStage,
+    /// The whole dictionary, no presence stage (a baseline).
+    NmfAlone,
+    /// Amount over the families set with [`SharesEstimator::set_known_presence`] (for
+    /// measuring the ceiling of the amount stage against ground truth).
+    KnownPresence,
+}
+
+/// Settings of a shares estimator.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SharesSettings {
+    /// Response time of the smoothing, ms (0: none).
+    pub response_ms: f64,
+    /// Which stages run.
+    pub mode: SharesMode,
+}
+
+impl Default for SharesSettings {
+    fn default() -> Self {
+        Self {
+            response_ms: DEFAULT_RESPONSE_MS,
+            mode: SharesMode::TwoStage,
+        }
+    }
+}
+
+/// Family shares at one moment. `share[..families]` and `unexplained` sum to 1 when `signal`;
+/// with no signal they are all 0.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Shares {
+    /// Whether there was a signal to share out (false: silence, below [`NO_SIGNAL_DB`]).
+    pub signal: bool,
+    /// Number of families in use.
+    pub families: usize,
+    /// Each family's share of the energy, 0–1.
+    pub share: [f32; MAX_FAMILIES],
+    /// The share the palette cannot explain, 0–1.
+    pub unexplained: f32,
+}
+
+impl Default for Shares {
+    fn default() -> Self {
+        Self {
+            signal: false,
+            families: 0,
+            share: [0.0; MAX_FAMILIES],
+            unexplained: 0.0,
+        }
+    }
+}
+
+impl Shares {
+    /// Sums family shares into sections: `out[s]` = Σ shares of families whose section is `s`
+    /// (`section_of[f]`). Does not allocate.
+    pub fn section_shares(&self, section_of: &[usize], out: &mut [f32]) {
+        out.fill(0.0);
+        for (f, &s) in section_of.iter().enumerate().take(self.families) {
+            if let Some(o) = out.get_mut(s) {
+                *o += self.share[f];
+            }
+        }
+    }
+}
+
+/// What one column produced.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct SharesUpdate {
+    /// Centre of the span the column's stack covers, seconds since the start.
+    pub time_s: f64,
+    /// Energy of the stacked column (the palette's band energies, arbitrary but fixed units).
+    pub energy: f32,
+    /// This column's shares, unsmoothed.
+    pub raw: Shares,
+    /// The shares smoothed with the response time (what a meter shows).
+    pub smoothed: Shares,
+    /// This column's shares from NMF alone (the whole dictionary).
+    pub nmf_alone: Shares,
+    /// Probability that each family is present (the presence model's output; 1 for present
+    /// families when the palette has no model).
+    pub presence: [f32; MAX_FAMILIES],
+    /// Families the amount stage used.
+    pub present: [bool; MAX_FAMILIES],
+}
+
+/// Turns frames' power spectra into family shares. Allocates only in [`SharesEstimator::new`].
+#[derive(Debug, Clone)]
+pub struct SharesEstimator {
+    columns: ColumnStream,
+    dict: Dictionary,
+    solver: ActivationSolver,
+    families: usize,
+    family_of_atom: Vec<usize>,
+    section_of: [usize; MAX_FAMILIES],
+    sections: usize,
+    tolerance: f32,
+    model: Option<PresenceModel>,
+    context: PresenceContext,
+    mode: SharesMode,
+    known: [bool; MAX_FAMILIES],
+    silence_energy: f32,
+    alpha: f64,
+    response_ms: f64,
+    h_full: Vec<f32>,
+    h_amount: Vec<f32>,
+    all_active: Vec<bool>,
+    active: Vec<bool>,
+    scratch: Vec<f32>,
+    fam_energy: Vec<f32>,
+    ema_num: [f64; MAX_FAMILIES],
+    ema_unexplained: f64,
+    ema_den: f64,
+    update: SharesUpdate,
+}
+
+impl SharesEstimator {
+    /// An estimator for `palette` on frames of `framing` at `sample_rate_hz` (the frames'
+    /// power spectra, as [`crate::spectrum::Spectrum::power`] gives them).
+    pub fn new(
+        palette: &Palette,
+        settings: SharesSettings,
+        sample_rate_hz: f64,
+        framing: FrameConfig,
+    ) -> Result<Self, SharesError> {
+        if !(sample_rate_hz.is_finite() && sample_rate_hz > 0.0) {
+            return Err(SharesError::SampleRate { sample_rate_hz });
+        }
+        let spec = palette.analysis();
+        let columns = ColumnStream::new(spec, sample_rate_hz, framing.frame_len, framing.hop_len)?;
+        let dims = spec.dims();
+        let dict = Dictionary::new(dims, palette.atoms().to_vec());
+        let families = palette.families().len();
+        let mut family_of_atom = Vec::with_capacity(dict.atoms());
+        for (f, &c) in palette.atom_counts().iter().enumerate() {
+            family_of_atom.extend(std::iter::repeat_n(f, c));
+        }
+        let mut section_of = [0usize; MAX_FAMILIES];
+        for (f, fam) in palette.families().iter().enumerate() {
+            section_of[f] = fam.section;
+        }
+        let context_len = (spec.presence_context_s / columns.column_period_s()).round().max(1.0) as usize;
+        let model = palette.presence().cloned();
+        let scratch_len = model
+            .as_ref()
+            .map_or(0, |m| m.features + m.hidden);
+        // One-sided Hann-windowed power of a sine of RMS σ sums to 0.1875·n²·σ² (Parseval with
+        // the Hann window's mean square 3/8, half of it on the positive side).
+        let n = framing.frame_len as f64;
+        let silence_energy = (0.1875 * n * n * 10f64.powf(NO_SIGNAL_DB / 10.0)) as f32;
+        let atoms = dict.atoms();
+        let mut est = Self {
+            solver: ActivationSolver::new(dims, spec.beta as f32, spec.iterations),
+            columns,
+            dict,
+            families,
+            family_of_atom,
+            section_of,
+            sections: palette.sections().len().min(MAX_SECTIONS),
+            tolerance: spec.unexplained_tolerance as f32,
+            context: PresenceContext::new(families, atoms, context_len),
+            model,
+            mode: settings.mode,
+            known: [false; MAX_FAMILIES],
+            silence_energy,
+            alpha: 0.0,
+            response_ms: 0.0,
+            h_full: vec![0.0; atoms],
+            h_amount: vec![0.0; atoms],
+            all_active: vec![true; atoms],
+            active: vec![false; atoms],
+            scratch: vec![0.0; scratch_len],
+            fam_energy: vec![0.0; families],
+            ema_num: [0.0; MAX_FAMILIES],
+            ema_unexplained: 0.0,
+            ema_den: 0.0,
+            update: SharesUpdate::default(),
+        };
+        est.set_response_ms(settings.response_ms)?;
+        Ok(est)
+    }
+
+    /// Changes the response time (ms) without losing state.
+    pub fn set_response_ms(&mut self, response_ms: f64) -> Result<(), SharesError> {
+        if !(response_ms.is_finite() && (0.0..=MAX_RESPONSE_MS).contains(&response_ms)) {
+            return Err(SharesError::ResponseTime { response_ms });
+        }
+        self.response_ms = response_ms;
+        let period_s = self.columns.column_period_s();
+        self.alpha = if response_ms <= 0.0 {
+            0.0
+        } else {
+            (-period_s / (response_ms / 1000.0)).exp()
+        };
+        Ok(())
+    }
+
+    /// The response time, ms.
+    pub fn response_ms(&self) -> f64 {
+        self.response_ms
+    }
+
+    /// Updates per second at this rate (one per column).
+    pub fn update_rate_hz(&self) -> f64 {
+        1.0 / self.columns.column_period_s()
+    }
+
+    /// Number of families.
+    pub fn families(&self) -> usize {
+        self.families
+    }
+
+    /// Section index of each family (first [`SharesEstimator::families`] entries).
+    pub fn section_of(&self) -> &[usize] {
+        &self.section_of[..self.families]
+    }
+
+    /// Number of sections.
+    pub fn sections(&self) -> usize {
+        self.sections
+    }
+
+    /// For [`SharesMode::KnownPresence`]: which families the amount stage may use.
+    pub fn set_known_presence(&mut self, present: &[bool]) {
+        self.known = [false; MAX_FAMILIES];
+        for (k, &p) in self.known.iter_mut().zip(present) {
+            *k = p;
+        }
+    }
+
+    /// Forgets all input (keeps palette and settings).
+    pub fn reset(&mut self) {
+        self.columns.reset();
+        self.context.reset();
+        self.h_full.fill(0.0);
+        self.h_amount.fill(0.0);
+        self.ema_num = [0.0; MAX_FAMILIES];
+        self.ema_unexplained = 0.0;
+        self.ema_den = 0.0;
+        self.update = SharesUpdate::default();
+    }
+
+    /// The presence features of the current context (schema
+    /// [`super::presence::PRESENCE_SCHEMA`]); for training presence models. Does not allocate.
+    pub fn presence_features(&mut self) -> &[f32] {
+        self.context.features()
+    }
+
+    /// Time the presence context spans, seconds.
+    pub fn presence_context_s(&self) -> f64 {
+        self.context.len() as f64 * self.columns.column_period_s()
+    }
+
+    /// Time between updates, seconds.
+    pub fn column_period_s(&self) -> f64 {
+        self.columns.column_period_s()
+    }
+
+    /// The last update.
+    pub fn last(&self) -> &SharesUpdate {
+        &self.update
+    }
+
+    /// Feeds one frame's one-sided power spectrum; returns the update when a column completed.
+    /// Does not allocate.
+    pub fn process_power(&mut self, power: &[f32]) -> Option<&SharesUpdate> {
+        if !self.columns.push_power(power) {
+            return None;
+        }
+        self.estimate();
+        Some(&self.update)
+    }
+
+    fn family_energies(&mut self, from_amount: bool) -> f32 {
+        self.fam_energy.fill(0.0);
+        let h = if from_amount { &self.h_amount } else { &self.h_full };
+        for (&hk, &f) in h.iter().zip(&self.family_of_atom) {
+            self.fam_energy[f] += hk;
+        }
+        self.fam_energy.iter().sum()
+    }
+
+    /// Positive residual of the last solve as a fraction of `total`.
+    fn residual_fraction(&self, v: &[f32], total: f32) -> f32 {
+        let r: f32 = v
+            .iter()
+            .zip(self.solver.model())
+            .map(|(&x, &l)| (x - l).max(0.0))
+            .sum();
+        (r / total).clamp(0.0, 1.0)
+    }
+
+    fn shares_from(&self, explained_sum: f32, residual: f32) -> Shares {
+        let tol = self.tolerance;
+        let u = ((residual - tol).max(0.0) / (1.0 - tol)).clamp(0.0, 1.0);
+        let mut s = Shares {
+            signal: true,
+            families: self.families,
+            ..Shares::default()
+        };
+        if explained_sum > 0.0 {
+            for f in 0..self.families {
+                s.share[f] = (1.0 - u) * self.fam_energy[f] / explained_sum;
+            }
+            s.unexplained = u;
+        } else {
+            s.unexplained = 1.0;
+        }
+        s
+    }
+
+    fn estimate(&mut self) {
+        let time_s = self.columns.stacked_centre_s();
+        let total: f32 = self.columns.stacked().iter().sum();
+        let stack = self.columns.dims() / self.columns.newest().len().max(1);
+        if !(total.is_finite() && total > self.silence_energy * stack as f32) {
+            self.fam_energy.fill(0.0);
+            self.h_full.fill(0.0);
+            self.context
+                .push(self.columns.newest(), 0.0, &self.h_full, &self.fam_energy, 0.0);
+            self.update.time_s = time_s;
+            self.update.energy = 0.0;
+            self.update.raw = Shares::default();
+            self.update.smoothed = Shares::default();
+            self.update.nmf_alone = Shares::default();
+            self.update.presence = [0.0; MAX_FAMILIES];
+            self.update.present = [false; MAX_FAMILIES];
+            return;
+        }
+        // Stage 0: NMF alone.
+        let v = self.columns.stacked();
+        self.solver.solve(&self.dict, v, &mut self.h_full, &self.all_active);
+        let residual_full = self.residual_fraction(self.columns.stacked(), total);
+        let explained = self.family_energies(false);
+        let nmf_alone = self.shares_from(explained, residual_full);
+        self.context.push(
+            self.columns.newest(),
+            total,
+            &self.h_full,
+            &self.fam_energy,
+            residual_full * total,
+        );
+        // Stage 1: presence.
+        let mut presence = [0.0_f32; MAX_FAMILIES];
+        let mut present = [false; MAX_FAMILIES];
+        let use_model = self.mode == SharesMode::TwoStage && self.model.is_some();
+        match (self.mode, &self.model) {
+            (SharesMode::TwoStage, Some(model)) => {
+                let x = self.context.features();
+                model.predict_into(x, &mut self.scratch, &mut presence[..self.families]);
+                let mut any = false;
+                for f in 0..self.families {
+                    present[f] = presence[f] >= model.thresholds[f];
+                    any |= present[f];
+                }
+                if !any {
+                    let best = (0..self.families)
+                        .max_by(|&a, &b| presence[a].total_cmp(&presence[b]))
+                        .unwrap_or(0);
+                    present[best] = true;
+                }
+            }
+            (SharesMode::KnownPresence, _) => {
+                present[..self.families].copy_from_slice(&self.known[..self.families]);
+                for f in 0..self.families {
+                    presence[f] = if present[f] { 1.0 } else { 0.0 };
+                }
+            }
+            _ => {
+                present[..self.families].fill(true);
+                presence[..self.families].fill(1.0);
+            }
+        }
+        // Stage 2: amount over the present families.
+        let raw = if use_model || self.mode == SharesMode::KnownPresence {
+            for (a, &f) in self.active.iter_mut().zip(&self.family_of_atom) {
+                *a = present[f];
+            }
+            self.h_amount.copy_from_slice(&self.h_full);
+            self.solver
+                .solve(&self.dict, self.columns.stacked(), &mut self.h_amount, &self.active);
+            let residual = self.residual_fraction(self.columns.stacked(), total);
+            let explained = self.family_energies(true);
+            self.shares_from(explained, residual)
+        } else {
+            nmf_alone
+        };
+        // Smoothing, weighted by energy.
+        let a = self.alpha;
+        let e = f64::from(total);
+        self.ema_den = a * self.ema_den + (1.0 - a) * e;
+        for f in 0..self.families {
+            self.ema_num[f] = a * self.ema_num[f] + (1.0 - a) * e * f64::from(raw.share[f]);
+        }
+        self.ema_unexplained = a * self.ema_unexplained + (1.0 - a) * e * f64::from(raw.unexplained);
+        let mut smoothed = raw;
+        if self.ema_den > 0.0 {
+            let mut sum = self.ema_unexplained / self.ema_den;
+            for f in 0..self.families {
+                sum += self.ema_num[f] / self.ema_den;
+            }
+            let k = if sum > 0.0 { 1.0 / sum } else { 1.0 };
+            for f in 0..self.families {
+                smoothed.share[f] = (self.ema_num[f] / self.ema_den * k) as f32;
+            }
+            smoothed.unexplained = (self.ema_unexplained / self.ema_den * k) as f32;
+        }
+        self.update = SharesUpdate {
+            time_s,
+            energy: total,
+            raw,
+            smoothed,
+            nmf_alone,
+            presence,
+            present,
+        };
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::palette::{AnalysisSpec, Family, LearnSettings, Provenance, learn_family_atoms, stacked_columns};
+    use crate::scene::{Mix, SceneRng};
+    use crate::shares::check::presence_rows;
+    use crate::shares::presence::{PresenceTraining, feature_count, train_presence};
+    use crate::shares::tracker::SharesTracker;
+    use std::f64::consts::TAU;
+
+    const SR: f64 = 48_000.0;
+
+    /// Three synthetic families: harmonic tones, noise bursts, decaying clicks (seeded).
+    fn family_signal(family: usize, seed: u64, seconds: f64) -> Vec<f32> {
+        let mut rng = SceneRng::new(seed);
+        let n = (seconds * SR) as usize;
+        let mut x = vec![0.0_f32; n];
+        match family {
+            0 => {
+                let note = (0.25 * SR) as usize;
+                for start in (0..n).step_by(note) {
+                    let f0 = 110.0 * 2f64.powf(rng.uniform(0.0, 3.0));
+                    let end = (start + note).min(n);
+                    for (j, s) in x[start..end].iter_mut().enumerate() {
+                        let t = j as f64 / SR;
+                        let v: f64 = (1..6).map(|h| (TAU * f0 * h as f64 * t).sin() / h as f64).sum();
+                        *s = (0.2 * v) as f32;
+                    }
+                }
+            }
+            1 => {
+                for (i, v) in x.iter_mut().enumerate() {
+                    let env = 0.5 + 0.5 * (TAU * 3.0 * i as f64 / SR).sin();
+                    *v = (0.3 * env * rng.normal()) as f32;
+                }
+            }
+            _ => {
+                let every = (0.125 * SR) as usize;
+                for start in (0..n).step_by(every) {
+                    let f = rng.uniform(60.0, 120.0);
+                    let end = (start + every).min(n);
+                    for (j, s) in x[start..end].iter_mut().enumerate() {
+                        let t = j as f64 / SR;
+                        *s = (0.8 * (-t * 30.0).exp() * (TAU * f * t).sin()) as f32;
+                    }
+                }
+            }
+        }
+        x
+    }
+
+    fn synthetic_palette(with_presence: bool) -> Palette {
+        let analysis = AnalysisSpec {
+            bands: 32,
+            ..AnalysisSpec::DEFAULT
+        };
+        let learn = LearnSettings {
+            atoms: 4,
+            iterations: 60,
+            ..LearnSettings::default()
+        };
+        let mut atoms = Vec::new();
+        for f in 0..3 {
+            let cols = stacked_columns(&family_signal(f, 10 + f as u64, 4.0), SR, &analysis).expect("bands");
+            atoms.extend(learn_family_atoms(&cols, analysis.dims(), &learn).expect("material"));
+        }
+        let families = ["tone", "noise", "click"]
+            .iter()
+            .enumerate()
+            .map(|(i, n)| Family {
+                name: (*n).into(),
+                section: i.min(1),
+            })
+            .collect();
+        let palette = Palette::new(
+            "synthetic".into(),
+            families,
+            vec!["pitched".into(), "unpitched".into()],
+            analysis,
+            vec![4, 4, 4],
+            atoms,
+            None,
+            Provenance::default(),
+        )
+        .expect("valid");
+        if !with_presence {
+            return palette;
+        }
+        let mut rows = Vec::new();
+        let mut labels = Vec::new();
+        let mut rng = SceneRng::new(99);
+        for m in 0..12u64 {
+            let stems: Vec<(usize, Vec<f32>)> = (0..3)
+                .filter(|_| rng.chance(0.6))
+                .map(|f| (f, family_signal(f, 100 + m * 3 + f as u64, 2.0)))
+                .collect();
+            if stems.is_empty() {
+                continue;
+            }
+            let members: Vec<(usize, &[f32])> = stems.iter().map(|(f, s)| (*f, s.as_slice())).collect();
+            let gains: Vec<f64> = members.iter().map(|_| rng.uniform(-20.0, 0.0)).collect();
+            let mix = Mix::new(&members, &gains, SR as u32);
+            presence_rows(&palette, &mix, &mut rows, &mut labels).expect("rows");
+        }
+        let opts = PresenceTraining {
+            hidden: 8,
+            epochs: 20,
+            ..PresenceTraining::default()
+        };
+        let model = train_presence(&rows, feature_count(3, 12), &labels, 3, &opts);
+        palette.with_presence(Some(model)).expect("valid")
+    }
+
+    fn test_mix() -> Vec<f32> {
+        let a = family_signal(0, 500, 3.0);
+        let b = family_signal(1, 501, 3.0);
+        let c = family_signal(2, 502, 3.0);
+        a.iter()
+            .zip(&b)
+            .zip(&c)
+            .map(|((x, y), z)| x + 0.3 * y + 0.5 * z)
+            .collect()
+    }
+
+    fn run(palette: &Palette, x: &[f32], block: usize) -> Vec<SharesUpdate> {
+        let mut t = SharesTracker::new(palette, SharesSettings::default(), SR).expect("tracker");
+        let mut out = Vec::new();
+        for b in x.chunks(block) {
+            t.process(b, |u| out.push(*u));
+        }
+        t.finish(|u| out.push(*u));
+        out
+    }
+
+    #[test]
+    fn shares_sum_to_one_and_silence_is_no_signal() {
+        for presence in [false, true] {
+            let p = synthetic_palette(presence);
+            let mut x = test_mix();
+            x.extend(std::iter::repeat_n(0.0, SR as usize));
+            let updates = run(&p, &x, 4096);
+            assert!(updates.len() as f64 >= 10.0 * 4.0, "≥ 10 updates per second");
+            for u in &updates {
+                for s in [&u.raw, &u.smoothed, &u.nmf_alone] {
+                    assert!(s.share.iter().all(|v| v.is_finite()) && s.unexplained.is_finite());
+                    let sum: f32 = s.share[..3].iter().sum::<f32>() + s.unexplained;
+                    if s.signal {
+                        assert!((sum - 1.0).abs() < 1e-4, "{sum} at {} s", u.time_s);
+                    } else {
+                        assert_eq!(sum, 0.0);
+                    }
+                }
+            }
+            // The last half second is silence (past the stack and the padding): no signal.
+            let tail: Vec<_> = updates.iter().filter(|u| u.time_s > 3.5).collect();
+            assert!(!tail.is_empty() && tail.iter().all(|u| !u.raw.signal && !u.smoothed.signal));
+            // The middle has a signal, and every family of the mix gets a share.
+            let mid = updates.iter().find(|u| u.time_s > 1.5).expect("update");
+            assert!(mid.raw.signal);
+        }
+    }
+
+    #[test]
+    fn a_gain_change_of_20_db_moves_no_share_by_1_pp() {
+        for presence in [false, true] {
+            let p = synthetic_palette(presence);
+            let x = test_mix();
+            let reference = run(&p, &x, 1024);
+            for gain in [10.0_f32, 0.1] {
+                let y: Vec<f32> = x.iter().map(|v| v * gain).collect();
+                let other = run(&p, &y, 1024);
+                assert_eq!(reference.len(), other.len());
+                for (a, b) in reference.iter().zip(&other) {
+                    assert_eq!(a.raw.signal, b.raw.signal);
+                    for f in 0..3 {
+                        for (s, t) in [(&a.smoothed, &b.smoothed), (&a.raw, &b.raw)] {
+                            let d = (s.share[f] - t.share[f]).abs();
+                            assert!(d <= 0.01, "presence {presence}, gain {gain}, family {f}, {} s: {d}", a.time_s);
+                        }
+                    }
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn block_size_never_changes_results() {
+        let p = synthetic_palette(true);
+        let x = test_mix();
+        let reference = run(&p, &x, x.len());
+        for block in [1, 64, 333, 512, 4096, 16384] {
+            assert_eq!(run(&p, &x, block), reference, "block {block}");
+        }
+    }
+
+    #[test]
+    fn processing_does_not_allocate() {
+        let p = synthetic_palette(true);
+        let x = test_mix();
+        let mut t = SharesTracker::new(&p, SharesSettings::default(), SR).expect("tracker");
+        let mut n = 0;
+        assert_no_alloc::assert_no_alloc(|| {
+            for b in x.chunks(480) {
+                t.process(b, |_| n += 1);
+            }
+        });
+        assert!(n > 0);
+    }
+
+    #[test]
+    fn response_time_is_validated_and_smooths() {
+        let p = synthetic_palette(false);
+        let framing = FrameConfig::for_sample_rate(SR);
+        for bad in [-1.0, f64::NAN, MAX_RESPONSE_MS * 2.0] {
+            let s = SharesSettings {
+                response_ms: bad,
+                ..SharesSettings::default()
+            };
+            assert!(matches!(
+                SharesEstimator::new(&p, s, SR, framing),
+                Err(SharesError::ResponseTime { .. })
+            ));
+        }
+        // With a response time, the smoothed shares move less from column to column than the
+        // raw ones.
+        let updates = run(&p, &test_mix(), 4096);
+        let jitter = |f: fn(&SharesUpdate) -> f32| -> f32 {
+            updates.windows(2).map(|w| (f(&w[1]) - f(&w[0])).abs()).sum()
+        };
+        assert!(jitter(|u| u.smoothed.share[0]) < 0.5 * jitter(|u| u.raw.share[0]));
+    }
+}

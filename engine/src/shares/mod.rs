@@ -1,0 +1,25 @@
+//! Shares: each family's fraction of the mix's energy, live, in two stages (presence, then
+//! amount), plus the share the palette cannot explain.
+//!
+//! - [`SharesEstimator`]: per-frame power spectra in (the plugin's [`crate::Analyzer`] feeds
+//!   its own), one [`SharesUpdate`] per column out (≥ 10 Hz). No allocation per frame.
+//! - [`SharesTracker`]: the same from raw samples of any block size (framer and FFT included):
+//!   the command-line tool, palette learning and checks use it.
+//! - [`nmf`]: β-divergence NMF (fixed dictionary, and dictionary learning).
+//! - [`presence`]: the presence features and models.
+//! - [`check`]: scoring against exact ground truth.
+
+pub mod check;
+mod columns;
+mod estimator;
+pub mod nmf;
+pub mod presence;
+mod tracker;
+
+pub use columns::ColumnStream;
+pub use estimator::{
+    DEFAULT_RESPONSE_MS, MAX_RESPONSE_MS, NO_SIGNAL_DB, Shares, SharesError, SharesEstimator,
+    SharesMode, SharesSettings, SharesUpdate,
+};
+pub use presence::{PresenceModel, PresenceTraining, train_presence};
+pub use tracker::SharesTracker;

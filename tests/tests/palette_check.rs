@@ -1,0 +1,63 @@
+//! A small `palette check` of the built-in palette on a fixed seed: held-out mixes rendered from
+//! the General MIDI SoundFont (FluidR3_GM, Debian `fluid-soundfont-gm`) with exact ground truth,
+//! scored against the bounds the palette reaches (see the constants: the goals are
+//! 25 % / 15 % / F1 0.85; the measured gap is reported in the palette note).
+
+use weft_engine::palette::{CheckPlan, Palette, check_palette};
+use weft_engine::scene::{ClipBank, Composer, SoundFontRenderer, general_midi_voicings};
+use weft_engine::shares::SharesMode;
+
+const SOUNDFONT: &str = "/usr/share/sounds/sf2/FluidR3_GM.sf2";
+const SEED: u64 = 11;
+
+/// Bounds asserted on this small check: what the built-in palette reached on this seed when it
+/// was made (54.8 %, 51.2 %, F1 0.44) with a margin of about 7 points. The goals (25 %,
+/// 15 %, 0.85) are not met; the gap is stated in the palette note. Regenerating the palette
+/// must not make these figures worse.
+const MAX_TV_PCT: f64 = 62.0;
+const MAX_SECTION_TV_PCT: f64 = 58.0;
+const MIN_PRESENCE_F1: f64 = 0.37;
+
+#[test]
+fn small_fixed_seed_check_meets_the_measured_bounds() {
+    let file = std::fs::File::open(SOUNDFONT)
+        .unwrap_or_else(|e| panic!("{SOUNDFONT} is missing ({e}): run cargo xtask setup"));
+    let renderer =
+        SoundFontRenderer::new(&mut std::io::BufReader::new(file), 48_000).expect("the SoundFont loads");
+    let palette = Palette::default_palette();
+    let composer = Composer::new(general_midi_voicings(), vec![], 0.0);
+    let plan = CheckPlan {
+        mixes: 10,
+        mix_s: 4.0,
+        seed: SEED,
+        threads: 2,
+        ..CheckPlan::default()
+    };
+    let r = check_palette(&palette, Some(&renderer), &composer, &ClipBank::new(16), &plan, SharesMode::TwoStage)
+        .expect("check runs");
+    let j = r.to_json();
+    println!("seed {SEED}: {j}");
+    assert!(r.windows >= 30, "seed {SEED}: only {} windows scored", r.windows);
+    // The product must beat both baselines, at both levels.
+    assert!(r.family.tv_pct < r.family.uniform_tv_pct, "seed {SEED}: {j}");
+    assert!(r.family.tv_pct < r.family.nmf_tv_pct, "seed {SEED}: {j}");
+    assert!(r.section.tv_pct < r.section.uniform_tv_pct, "seed {SEED}: {j}");
+    assert!(r.family.tv_pct <= MAX_TV_PCT, "seed {SEED}: {j}");
+    assert!(r.section.tv_pct <= MAX_SECTION_TV_PCT, "seed {SEED}: {j}");
+    assert!(r.family.f1 >= MIN_PRESENCE_F1, "seed {SEED}: {j}");
+    assert!(r.unexplained_mean < 0.15, "seed {SEED}: {j}");
+    for key in [
+        "tv_pct",
+        "section_tv_pct",
+        "present_mae_pp",
+        "presence_f1",
+        "baseline_uniform_tv_pct",
+        "baseline_nmf_tv_pct",
+        "unexplained_mean",
+        "realtime_factor",
+        "per_family",
+    ] {
+        assert!(j.get(key).is_some(), "missing key {key}");
+    }
+    assert_eq!(j["per_family"].as_object().map(|o| o.len()), Some(16));
+}

@@ -1,0 +1,41 @@
+//! `cargo xtask palette`: regenerates the built-in palette, `engine/src/palette/default.weftpal`,
+//! from the General MIDI SoundFont FluidR3_GM (Debian `fluid-soundfont-gm`) and sung vowels from
+//! espeak-ng, with a fixed seed, so the same machine setup always produces the same file.
+//!
+//! With `--check` it then runs a held-out `weft palette check` on the new file and prints the
+//! table.
+
+use crate::run_checked;
+use crate::setup::SOUNDFONT;
+use anyhow::{Context, Result, bail};
+use std::path::Path;
+use std::process::Command;
+
+/// Where the built-in palette lives (embedded by `include_bytes!`).
+pub const DEFAULT_PALETTE: &str = "engine/src/palette/default.weftpal";
+/// The seed of the built-in palette.
+pub const SEED: &str = "1";
+
+/// Runs the task.
+pub fn run(args: &[String]) -> Result<()> {
+    if !Path::new(SOUNDFONT).exists() {
+        bail!("{SOUNDFONT} is missing: run `cargo xtask setup`");
+    }
+    let tmp = format!("{DEFAULT_PALETTE}.new");
+    let mut cmd = Command::new(env!("CARGO"));
+    cmd.args(["run", "--release", "-q", "-p", "weft", "--", "palette", "render"])
+        .args(["--soundfont", SOUNDFONT, "--voice", "espeak", "--seed", SEED])
+        .args(["--out", &tmp]);
+    run_checked(&mut cmd)?;
+    std::fs::rename(&tmp, DEFAULT_PALETTE)
+        .with_context(|| format!("cannot replace {DEFAULT_PALETTE}"))?;
+    let size = std::fs::metadata(DEFAULT_PALETTE)?.len();
+    println!("palette: wrote {DEFAULT_PALETTE} ({size} bytes)");
+    if args.iter().any(|a| a == "--check") {
+        let mut cmd = Command::new(env!("CARGO"));
+        cmd.args(["run", "--release", "-q", "-p", "weft", "--", "palette", "check"])
+            .args(["--palette", DEFAULT_PALETTE, "--soundfont", SOUNDFONT, "--seed", SEED]);
+        run_checked(&mut cmd)?;
+    }
+    Ok(())
+}
