@@ -25,9 +25,12 @@ fn signal() -> Vec<f32> {
             let t = i as f64 / SR;
             let tones: f64 = [110.0, 220.0 * 1.26, 440.0 * 1.5]
                 .iter()
-                .flat_map(|&f| (1..6).map(move |h| (std::f64::consts::TAU * f * h as f64 * t).sin() / h as f64))
+                .flat_map(|&f| {
+                    (1..6).map(move |h| (std::f64::consts::TAU * f * h as f64 * t).sin() / h as f64)
+                })
                 .sum();
-            let click = (-((i % 12_000) as f64) / 400.0).exp() * (std::f64::consts::TAU * 70.0 * t).sin();
+            let click =
+                (-((i % 12_000) as f64) / 400.0).exp() * (std::f64::consts::TAU * 70.0 * t).sin();
             (0.05 * tones + 0.02 * rng.normal() + 0.3 * click) as f32
         })
         .collect()

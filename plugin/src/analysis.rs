@@ -140,7 +140,11 @@ impl FrameState {
         s.rms_smoothed_db = amplitude_to_db(smoothed.sqrt());
         let weighted = |pole: &mut OnePole, value: f32| -> f32 {
             let num = pole.step(f64::from(value) * power, a);
-            if smoothed > 0.0 { (num / smoothed) as f32 } else { 0.0 }
+            if smoothed > 0.0 {
+                (num / smoothed) as f32
+            } else {
+                0.0
+            }
         };
         s.timbre.centroid_hz = weighted(&mut self.centroid_power, d.centroid_hz);
         s.timbre.bandwidth_hz = weighted(&mut self.bandwidth_power, d.bandwidth_hz);
@@ -159,7 +163,13 @@ impl FrameState {
         c.flux_db += f64::from(d.flux_db);
         if c.frames >= self.frames_per_cell {
             let n = f64::from(c.frames);
-            let by_power = |sum: f64| if c.power > 0.0 { (sum / c.power) as f32 } else { 0.0 };
+            let by_power = |sum: f64| {
+                if c.power > 0.0 {
+                    (sum / c.power) as f32
+                } else {
+                    0.0
+                }
+            };
             let cell = TrendCell {
                 rms_db: amplitude_to_db((c.power / n).sqrt()),
                 centroid_hz: by_power(c.centroid_power),

@@ -293,15 +293,18 @@ fn timbre_view(ui: &mut egui::Ui, snap: &Snapshot) {
         ("Flatness", format!("{:.3}", t.flatness), |c| c.flatness),
         ("Flux", format!("{:.2} dB", t.flux_db), |c| c.flux_db),
     ];
-    egui::Grid::new("timbre").num_columns(3).spacing([8.0, 4.0]).show(ui, |ui| {
-        for (name, value, pick) in rows {
-            ui.label(RichText::new(name).color(colours::MUTED));
-            ui.label(RichText::new(value).monospace());
-            let values: Vec<f32> = history.iter().map(pick).collect();
-            sparkline(ui, &values);
-            ui.end_row();
-        }
-    });
+    egui::Grid::new("timbre")
+        .num_columns(3)
+        .spacing([8.0, 4.0])
+        .show(ui, |ui| {
+            for (name, value, pick) in rows {
+                ui.label(RichText::new(name).color(colours::MUTED));
+                ui.label(RichText::new(value).monospace());
+                let values: Vec<f32> = history.iter().map(pick).collect();
+                sparkline(ui, &values);
+                ui.end_row();
+            }
+        });
 }
 
 /// A small trend line scaled to its own range (newest at the right).

@@ -22,8 +22,8 @@ const MIN_PRESENCE_F1: f64 = 0.37;
 fn small_fixed_seed_check_meets_the_measured_bounds() {
     let file = std::fs::File::open(SOUNDFONT)
         .unwrap_or_else(|e| panic!("{SOUNDFONT} is missing ({e}): run cargo xtask setup"));
-    let renderer =
-        SoundFontRenderer::new(&mut std::io::BufReader::new(file), 48_000).expect("the SoundFont loads");
+    let renderer = SoundFontRenderer::new(&mut std::io::BufReader::new(file), 48_000)
+        .expect("the SoundFont loads");
     let palette = Palette::default_palette();
     let composer = Composer::new(general_midi_voicings(), vec![], 0.0);
     let plan = CheckPlan {
@@ -33,15 +33,32 @@ fn small_fixed_seed_check_meets_the_measured_bounds() {
         threads: 2,
         ..CheckPlan::default()
     };
-    let r = check_palette(&palette, Some(&renderer), &composer, &ClipBank::new(16), &plan, SharesMode::TwoStage)
-        .expect("check runs");
+    let r = check_palette(
+        &palette,
+        Some(&renderer),
+        &composer,
+        &ClipBank::new(16),
+        &plan,
+        SharesMode::TwoStage,
+    )
+    .expect("check runs");
     let j = r.to_json();
     println!("seed {SEED}: {j}");
-    assert!(r.windows >= 30, "seed {SEED}: only {} windows scored", r.windows);
+    assert!(
+        r.windows >= 30,
+        "seed {SEED}: only {} windows scored",
+        r.windows
+    );
     // The product must beat both baselines, at both levels.
-    assert!(r.family.tv_pct < r.family.uniform_tv_pct, "seed {SEED}: {j}");
+    assert!(
+        r.family.tv_pct < r.family.uniform_tv_pct,
+        "seed {SEED}: {j}"
+    );
     assert!(r.family.tv_pct < r.family.nmf_tv_pct, "seed {SEED}: {j}");
-    assert!(r.section.tv_pct < r.section.uniform_tv_pct, "seed {SEED}: {j}");
+    assert!(
+        r.section.tv_pct < r.section.uniform_tv_pct,
+        "seed {SEED}: {j}"
+    );
     assert!(r.family.tv_pct <= MAX_TV_PCT, "seed {SEED}: {j}");
     assert!(r.section.tv_pct <= MAX_SECTION_TV_PCT, "seed {SEED}: {j}");
     assert!(r.family.f1 >= MIN_PRESENCE_F1, "seed {SEED}: {j}");

@@ -23,9 +23,25 @@ pub fn run(args: &[String]) -> Result<()> {
     }
     let tmp = format!("{DEFAULT_PALETTE}.new");
     let mut cmd = Command::new(env!("CARGO"));
-    cmd.args(["run", "--release", "-q", "-p", "weft", "--", "palette", "render"])
-        .args(["--soundfont", SOUNDFONT, "--voice", "espeak", "--seed", SEED])
-        .args(["--out", &tmp]);
+    cmd.args([
+        "run",
+        "--release",
+        "-q",
+        "-p",
+        "weft",
+        "--",
+        "palette",
+        "render",
+    ])
+    .args([
+        "--soundfont",
+        SOUNDFONT,
+        "--voice",
+        "espeak",
+        "--seed",
+        SEED,
+    ])
+    .args(["--out", &tmp]);
     run_checked(&mut cmd)?;
     std::fs::rename(&tmp, DEFAULT_PALETTE)
         .with_context(|| format!("cannot replace {DEFAULT_PALETTE}"))?;
@@ -33,8 +49,24 @@ pub fn run(args: &[String]) -> Result<()> {
     println!("palette: wrote {DEFAULT_PALETTE} ({size} bytes)");
     if args.iter().any(|a| a == "--check") {
         let mut cmd = Command::new(env!("CARGO"));
-        cmd.args(["run", "--release", "-q", "-p", "weft", "--", "palette", "check"])
-            .args(["--palette", DEFAULT_PALETTE, "--soundfont", SOUNDFONT, "--seed", SEED]);
+        cmd.args([
+            "run",
+            "--release",
+            "-q",
+            "-p",
+            "weft",
+            "--",
+            "palette",
+            "check",
+        ])
+        .args([
+            "--palette",
+            DEFAULT_PALETTE,
+            "--soundfont",
+            SOUNDFONT,
+            "--seed",
+            SEED,
+        ]);
         run_checked(&mut cmd)?;
     }
     Ok(())

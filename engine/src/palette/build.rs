@@ -9,7 +9,9 @@
 use super::{AnalysisSpec, Family, LearnSettings, Palette, PaletteError, Provenance};
 use super::{learn_family_atoms, stacked_columns};
 use crate::scene::{ClipBank, Composer, Mix, MixSpec, SceneError, SceneRng, SoundFontRenderer};
-use crate::shares::check::{CheckReport, MixRecord, evaluate_mix, known_presence_residuals, presence_rows};
+use crate::shares::check::{
+    CheckReport, MixRecord, evaluate_mix, known_presence_residuals, presence_rows,
+};
 use crate::shares::presence::feature_count;
 use crate::shares::{PresenceTraining, SharesError, SharesMode, train_presence};
 use thiserror::Error;
@@ -173,7 +175,9 @@ fn parallel<T: Send>(n: usize, threads: usize, job: impl Fn(usize) -> T + Sync) 
                         break;
                     }
                     let r = job(i);
-                    let mut guard = slots.lock().unwrap_or_else(std::sync::PoisonError::into_inner);
+                    let mut guard = slots
+                        .lock()
+                        .unwrap_or_else(std::sync::PoisonError::into_inner);
                     guard[i] = Some(r);
                 }
             });
@@ -268,7 +272,10 @@ fn family_material(
     }
     for clip in clips.family(family) {
         signal.extend_from_slice(clip);
-        signal.extend(std::iter::repeat_n(0.0, (0.2 * f64::from(plan.sample_rate_hz)) as usize));
+        signal.extend(std::iter::repeat_n(
+            0.0,
+            (0.2 * f64::from(plan.sample_rate_hz)) as usize,
+        ));
     }
     Ok(signal)
 }
@@ -299,9 +306,10 @@ pub fn build_palette(
         let columns = stacked_columns(&material, sr, &spec).map_err(SharesError::from)?;
         let mut learn = plan.learn;
         learn.seed = SceneRng::derive(plan.seed, 1000 + f as u64).next_u64();
-        let atoms = learn_family_atoms(&columns, dims, &learn).ok_or_else(|| BuildError::NoMaterial {
-            family: families[f].name.clone(),
-        })?;
+        let atoms =
+            learn_family_atoms(&columns, dims, &learn).ok_or_else(|| BuildError::NoMaterial {
+                family: families[f].name.clone(),
+            })?;
         progress(&format!(
             "  {}: {:.0} s of material, {} columns",
             families[f].name,
@@ -330,26 +338,33 @@ pub fn build_palette(
     if plan.training_mixes == 0 {
         return Ok(palette);
     }
-    progress(&format!("rendering {} training mixes for the presence model", plan.training_mixes));
+    progress(&format!(
+        "rendering {} training mixes for the presence model",
+        plan.training_mixes
+    ));
     let candidates: Vec<usize> = (0..nf).collect();
-    let rows = parallel(plan.training_mixes, plan.threads, |i| -> Result<(Vec<f32>, Vec<bool>), BuildError> {
-        let seed = SceneRng::derive(plan.seed ^ TRAIN_STREAM, i as u64).next_u64();
-        let mix = render_mix(
-            renderer,
-            composer,
-            clips,
-            seed,
-            &candidates,
-            plan.max_families,
-            plan.gain_range_db,
-            plan.mix_s,
-            plan.sample_rate_hz,
-        )?;
-        let mut rows = Vec::new();
-        let mut labels = Vec::new();
-        presence_rows(&palette, &mix, &mut rows, &mut labels)?;
-        Ok((rows, labels))
-    });
+    let rows = parallel(
+        plan.training_mixes,
+        plan.threads,
+        |i| -> Result<(Vec<f32>, Vec<bool>), BuildError> {
+            let seed = SceneRng::derive(plan.seed ^ TRAIN_STREAM, i as u64).next_u64();
+            let mix = render_mix(
+                renderer,
+                composer,
+                clips,
+                seed,
+                &candidates,
+                plan.max_families,
+                plan.gain_range_db,
+                plan.mix_s,
+                plan.sample_rate_hz,
+            )?;
+            let mut rows = Vec::new();
+            let mut labels = Vec::new();
+            presence_rows(&palette, &mix, &mut rows, &mut labels)?;
+            Ok((rows, labels))
+        },
+    );
     let mut x = Vec::new();
     let mut y = Vec::new();
     for r in rows {
@@ -372,27 +387,34 @@ pub fn build_palette(
     // the residual the amount stage leaves on training mixes of known families.
     let calib = palette.clone().with_unexplained_tolerance(0.0)?;
     let n = plan.training_mixes.min(CALIBRATION_MIXES);
-    let residuals = parallel(n, plan.threads, |i| -> Result<Vec<(f64, f64)>, BuildError> {
-        let seed = SceneRng::derive(plan.seed ^ TRAIN_STREAM, i as u64).next_u64();
-        let mix = render_mix(
-            renderer,
-            composer,
-            clips,
-            seed,
-            &candidates,
-            plan.max_families,
-            plan.gain_range_db,
-            plan.mix_s,
-            plan.sample_rate_hz,
-        )?;
-        Ok(known_presence_residuals(&calib, &mix)?)
-    });
+    let residuals = parallel(
+        n,
+        plan.threads,
+        |i| -> Result<Vec<(f64, f64)>, BuildError> {
+            let seed = SceneRng::derive(plan.seed ^ TRAIN_STREAM, i as u64).next_u64();
+            let mix = render_mix(
+                renderer,
+                composer,
+                clips,
+                seed,
+                &candidates,
+                plan.max_families,
+                plan.gain_range_db,
+                plan.mix_s,
+                plan.sample_rate_hz,
+            )?;
+            Ok(known_presence_residuals(&calib, &mix)?)
+        },
+    );
     let mut all = Vec::new();
     for r in residuals {
         all.extend(r?);
     }
     let tolerance = weighted_quantile(&mut all, TOLERANCE_QUANTILE).clamp(0.0, 0.9);
-    progress(&format!("unexplained tolerance: {tolerance:.3} (quantile {TOLERANCE_QUANTILE} of {} columns)", all.len()));
+    progress(&format!(
+        "unexplained tolerance: {tolerance:.3} (quantile {TOLERANCE_QUANTILE} of {} columns)",
+        all.len()
+    ));
     Ok(palette.with_unexplained_tolerance(tolerance)?)
 }
 
@@ -410,21 +432,25 @@ pub fn check_palette(
     let candidates: Vec<usize> = (0..palette.families().len())
         .filter(|&f| f < composer.voicings().len())
         .collect();
-    let records = parallel(plan.mixes, plan.threads, |i| -> Result<MixRecord, BuildError> {
-        let seed = SceneRng::derive(plan.seed ^ CHECK_STREAM, i as u64).next_u64();
-        let mix = render_mix(
-            renderer,
-            composer,
-            clips,
-            seed,
-            &candidates,
-            plan.max_families,
-            plan.gain_range_db,
-            plan.mix_s,
-            plan.sample_rate_hz,
-        )?;
-        Ok(evaluate_mix(palette, &mix, plan.window_s, mode)?)
-    });
+    let records = parallel(
+        plan.mixes,
+        plan.threads,
+        |i| -> Result<MixRecord, BuildError> {
+            let seed = SceneRng::derive(plan.seed ^ CHECK_STREAM, i as u64).next_u64();
+            let mix = render_mix(
+                renderer,
+                composer,
+                clips,
+                seed,
+                &candidates,
+                plan.max_families,
+                plan.gain_range_db,
+                plan.mix_s,
+                plan.sample_rate_hz,
+            )?;
+            Ok(evaluate_mix(palette, &mix, plan.window_s, mode)?)
+        },
+    );
     let records: Result<Vec<MixRecord>, BuildError> = records.into_iter().collect();
     Ok(CheckReport::new(palette, &records?))
 }

@@ -9,7 +9,9 @@ pub enum PaletteError {
     #[error("not a Weft palette file (it does not start with the palette signature)")]
     NotAPalette,
     /// The file's format version is not one this Weft reads.
-    #[error("palette format version {found} is not supported (this Weft reads version {supported})")]
+    #[error(
+        "palette format version {found} is not supported (this Weft reads version {supported})"
+    )]
     Version {
         /// The version the file declares.
         found: u32,

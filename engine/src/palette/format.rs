@@ -124,7 +124,8 @@ impl Palette {
         let header: Header =
             serde_json::from_slice(json).map_err(|source| PaletteError::Header { source })?;
         let count = u64::from_le_bytes(r.array::<8>("atom count")?);
-        let max_values = (MAX_FILE_BYTES / 4).min((bytes.len() as u64).saturating_sub(r.at as u64) / 4 + 1);
+        let max_values =
+            (MAX_FILE_BYTES / 4).min((bytes.len() as u64).saturating_sub(r.at as u64) / 4 + 1);
         if count > max_values {
             return Err(PaletteError::Limit {
                 what: "atom values",
@@ -169,7 +170,9 @@ mod tests {
             ..AnalysisSpec::DEFAULT
         };
         let counts = vec![2, 3];
-        let atoms: Vec<f32> = (0..5 * analysis.dims()).map(|_| rng.unit() as f32 + 0.01).collect();
+        let atoms: Vec<f32> = (0..5 * analysis.dims())
+            .map(|_| rng.unit() as f32 + 0.01)
+            .collect();
         let presence = with_presence.then(|| {
             let d = feature_count(2, 5);
             let rows: Vec<f32> = (0..40 * d).map(|_| rng.unit() as f32).collect();
@@ -222,32 +225,53 @@ mod tests {
     #[test]
     fn damaged_files_are_refused_with_reasons() {
         let good = small(4, true).to_bytes();
-        assert!(matches!(Palette::from_bytes(b"RIFF1234"), Err(PaletteError::NotAPalette)));
-        assert!(matches!(Palette::from_bytes(&[]), Err(PaletteError::NotAPalette)));
+        assert!(matches!(
+            Palette::from_bytes(b"RIFF1234"),
+            Err(PaletteError::NotAPalette)
+        ));
+        assert!(matches!(
+            Palette::from_bytes(&[]),
+            Err(PaletteError::NotAPalette)
+        ));
         let mut v = good.clone();
         v[8] = 9;
         assert!(matches!(
             Palette::from_bytes(&v),
-            Err(PaletteError::Version { found: 9, supported: 1 })
+            Err(PaletteError::Version {
+                found: 9,
+                supported: 1
+            })
         ));
         for cut in [10, 20, good.len() - 1] {
             assert!(
-                matches!(Palette::from_bytes(&good[..cut]), Err(PaletteError::Truncated { .. })),
+                matches!(
+                    Palette::from_bytes(&good[..cut]),
+                    Err(PaletteError::Truncated { .. })
+                ),
                 "cut at {cut}"
             );
         }
         let mut v = good.clone();
         v.push(0);
-        assert!(matches!(Palette::from_bytes(&v), Err(PaletteError::TrailingBytes { extra: 1 })));
+        assert!(matches!(
+            Palette::from_bytes(&v),
+            Err(PaletteError::TrailingBytes { extra: 1 })
+        ));
         // A hostile header length is refused before anything is allocated.
         let mut v = good.clone();
         v[12..16].copy_from_slice(&u32::MAX.to_le_bytes());
-        assert!(matches!(Palette::from_bytes(&v), Err(PaletteError::Limit { .. })));
+        assert!(matches!(
+            Palette::from_bytes(&v),
+            Err(PaletteError::Limit { .. })
+        ));
         // A hostile atom count too.
         let header_len = u32::from_le_bytes([good[12], good[13], good[14], good[15]]) as usize;
         let mut v = good.clone();
         v[16 + header_len..24 + header_len].copy_from_slice(&u64::MAX.to_le_bytes());
-        assert!(matches!(Palette::from_bytes(&v), Err(PaletteError::Limit { .. })));
+        assert!(matches!(
+            Palette::from_bytes(&v),
+            Err(PaletteError::Limit { .. })
+        ));
         // A NaN atom value.
         let mut v = good.clone();
         let at = 24 + header_len;
@@ -277,15 +301,33 @@ mod tests {
         assert!(with_header_edit(|_| {}).is_ok());
         type Edit = Box<dyn Fn(&mut serde_json::Value)>;
         let cases: Vec<(&str, Edit)> = vec![
-            ("families", Box::new(|h| h["families"][1]["name"] = "low".into())),
-            ("families", Box::new(|h| h["families"][1]["section"] = 7.into())),
+            (
+                "families",
+                Box::new(|h| h["families"][1]["name"] = "low".into()),
+            ),
+            (
+                "families",
+                Box::new(|h| h["families"][1]["section"] = 7.into()),
+            ),
             ("sections", Box::new(|h| h["sections"][1] = "a".into())),
             ("name", Box::new(|h| h["name"] = "".into())),
-            ("analysis.stack", Box::new(|h| h["analysis"]["stack"] = 50.into())),
-            ("analysis.beta", Box::new(|h| h["analysis"]["beta"] = 3.0.into())),
+            (
+                "analysis.stack",
+                Box::new(|h| h["analysis"]["stack"] = 50.into()),
+            ),
+            (
+                "analysis.beta",
+                Box::new(|h| h["analysis"]["beta"] = 3.0.into()),
+            ),
             ("atoms", Box::new(|h| h["atom_counts"][0] = 3.into())),
-            ("presence", Box::new(|h| h["presence"]["schema"] = "other".into())),
-            ("presence", Box::new(|h| h["presence"]["thresholds"][0] = 2.0.into())),
+            (
+                "presence",
+                Box::new(|h| h["presence"]["schema"] = "other".into()),
+            ),
+            (
+                "presence",
+                Box::new(|h| h["presence"]["thresholds"][0] = 2.0.into()),
+            ),
         ];
         for (field, edit) in cases {
             match with_header_edit(edit) {
@@ -307,14 +349,26 @@ mod tests {
             let f = h["families"][0].clone();
             h["families"] = serde_json::Value::Array(vec![f; MAX_FAMILIES + 1]);
         });
-        assert!(matches!(r, Err(PaletteError::Limit { what: "families", .. })), "{r:?}");
+        assert!(
+            matches!(
+                r,
+                Err(PaletteError::Limit {
+                    what: "families",
+                    ..
+                })
+            ),
+            "{r:?}"
+        );
     }
 
     #[test]
     fn the_built_in_palette_is_valid_and_names_the_vocabulary() {
         let p = Palette::default_palette();
         let names: Vec<&str> = p.families().iter().map(|f| f.name.as_str()).collect();
-        let want: Vec<&str> = crate::palette::DEFAULT_FAMILIES.iter().map(|f| f.0).collect();
+        let want: Vec<&str> = crate::palette::DEFAULT_FAMILIES
+            .iter()
+            .map(|f| f.0)
+            .collect();
         assert_eq!(names, want);
         assert_eq!(p.sections(), crate::palette::DEFAULT_SECTIONS);
         for (f, (_, section)) in p.families().iter().zip(crate::palette::DEFAULT_FAMILIES) {

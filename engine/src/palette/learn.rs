@@ -49,7 +49,10 @@ pub fn stacked_columns(
     let mut columns = ColumnStream::new(spec, sample_rate_hz, framing.frame_len, framing.hop_len)?;
     let mut out = Vec::new();
     let mut i = 0;
-    let take = |framer: &mut Framer, spectrum: &mut Spectrum, columns: &mut ColumnStream, out: &mut Vec<f32>| {
+    let take = |framer: &mut Framer,
+                spectrum: &mut Spectrum,
+                columns: &mut ColumnStream,
+                out: &mut Vec<f32>| {
         spectrum.process(framer.frame());
         if columns.push_power(spectrum.power()) && columns.columns_done() >= spec.stack as u64 {
             out.extend_from_slice(columns.stacked());
@@ -78,7 +81,11 @@ pub fn stacked_columns(
 /// quieter than `settings.floor_db` below the loudest, keeps at most `settings.max_columns`
 /// evenly spaced ones, and factorises them. Returns `settings.atoms × dims` values (atoms
 /// normalised to sum 1), or `None` when no column is loud enough.
-pub fn learn_family_atoms(columns: &[f32], dims: usize, settings: &LearnSettings) -> Option<Vec<f32>> {
+pub fn learn_family_atoms(
+    columns: &[f32],
+    dims: usize,
+    settings: &LearnSettings,
+) -> Option<Vec<f32>> {
     if dims == 0 {
         return None;
     }
@@ -88,7 +95,9 @@ pub fn learn_family_atoms(columns: &[f32], dims: usize, settings: &LearnSettings
         return None;
     }
     let floor = loudest * 10f32.powf(-(settings.floor_db as f32) / 10.0);
-    let kept: Vec<usize> = (0..energies.len()).filter(|&i| energies[i] > floor).collect();
+    let kept: Vec<usize> = (0..energies.len())
+        .filter(|&i| energies[i] > floor)
+        .collect();
     if kept.is_empty() {
         return None;
     }
@@ -103,5 +112,11 @@ pub fn learn_family_atoms(columns: &[f32], dims: usize, settings: &LearnSettings
         data.extend(columns[c * dims..(c + 1) * dims].iter().map(|v| v / e));
         x += step;
     }
-    Some(learn_dictionary(&data, dims, settings.atoms, settings.iterations, settings.seed))
+    Some(learn_dictionary(
+        &data,
+        dims,
+        settings.atoms,
+        settings.iterations,
+        settings.seed,
+    ))
 }

@@ -118,17 +118,22 @@ impl AnalysisSpec {
     }
 
     fn check(&self) -> Result<(), PaletteError> {
-        let bad = |field: &'static str, value: f64| Err(PaletteError::Invalid {
-            field,
-            reason: format!("value {value} is out of range"),
-        });
+        let bad = |field: &'static str, value: f64| {
+            Err(PaletteError::Invalid {
+                field,
+                reason: format!("value {value} is out of range"),
+            })
+        };
         if !(8..=MAX_PALETTE_BANDS).contains(&self.bands) {
             return bad("analysis.bands", self.bands as f64);
         }
         if !(self.fmin_hz.is_finite() && self.fmin_hz >= 0.0 && self.fmin_hz < 1000.0) {
             return bad("analysis.fmin_hz", self.fmin_hz);
         }
-        if !(self.fmax_hz.is_finite() && self.fmax_hz > self.fmin_hz + 1000.0 && self.fmax_hz <= 48_000.0) {
+        if !(self.fmax_hz.is_finite()
+            && self.fmax_hz > self.fmin_hz + 1000.0
+            && self.fmax_hz <= 48_000.0)
+        {
             return bad("analysis.fmax_hz", self.fmax_hz);
         }
         if !(self.column_s.is_finite() && (0.005..=0.1).contains(&self.column_s)) {
@@ -143,10 +148,13 @@ impl AnalysisSpec {
         if !(1..=500).contains(&self.iterations) {
             return bad("analysis.iterations", self.iterations as f64);
         }
-        if !(self.presence_context_s.is_finite() && (0.1..=5.0).contains(&self.presence_context_s)) {
+        if !(self.presence_context_s.is_finite() && (0.1..=5.0).contains(&self.presence_context_s))
+        {
             return bad("analysis.presence_context_s", self.presence_context_s);
         }
-        if !(self.unexplained_tolerance.is_finite() && (0.0..1.0).contains(&self.unexplained_tolerance)) {
+        if !(self.unexplained_tolerance.is_finite()
+            && (0.0..1.0).contains(&self.unexplained_tolerance))
+        {
             return bad("analysis.unexplained_tolerance", self.unexplained_tolerance);
         }
         Ok(())
@@ -286,7 +294,10 @@ impl Palette {
         if self.atoms.len() != want {
             return Err(PaletteError::Invalid {
                 field: "atoms",
-                reason: format!("{} values; the counts and layout need {want}", self.atoms.len()),
+                reason: format!(
+                    "{} values; the counts and layout need {want}",
+                    self.atoms.len()
+                ),
             });
         }
         for (k, atom) in self.atoms.chunks_exact(dims).enumerate() {
@@ -304,10 +315,11 @@ impl Palette {
             }
         }
         if let Some(p) = &self.presence {
-            p.check(nf, self.atom_counts.iter().sum()).map_err(|reason| PaletteError::Invalid {
-                field: "presence",
-                reason,
-            })?;
+            p.check(nf, self.atom_counts.iter().sum())
+                .map_err(|reason| PaletteError::Invalid {
+                    field: "presence",
+                    reason,
+                })?;
         }
         Ok(())
     }

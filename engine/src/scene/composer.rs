@@ -194,13 +194,17 @@ impl Composer {
                 continue;
             }
             let sound = match &v.source {
-                VoiceSource::Programs(p) if !p.is_empty() => PartSound::Program(p[prng.index(p.len())]),
+                VoiceSource::Programs(p) if !p.is_empty() => {
+                    PartSound::Program(p[prng.index(p.len())])
+                }
                 VoiceSource::Drums { kits, .. } if !kits.is_empty() => {
                     PartSound::Kit(kits[prng.index(kits.len())])
                 }
                 _ => continue,
             };
-            let role = v.roles[prng.index(v.roles.len().max(1)).min(v.roles.len().saturating_sub(1))];
+            let role = v.roles[prng
+                .index(v.roles.len().max(1))
+                .min(v.roles.len().saturating_sub(1))];
             let level = prng.uniform(f64::from(v.velocities.0) + 10.0, f64::from(v.velocities.1));
             let mut notes = match role {
                 Role::Kick | Role::Backbeat | Role::Cymbal | Role::HandPercussion => {
@@ -248,11 +252,14 @@ impl Composer {
         let sounds: Vec<(PartSound, Vec<u8>)> = match &v.source {
             VoiceSource::Programs(p) => {
                 let keys: Vec<u8> = (v.keys.0..=v.keys.1).step_by(key_step).collect();
-                p.iter().map(|&p| (PartSound::Program(p), keys.clone())).collect()
+                p.iter()
+                    .map(|&p| (PartSound::Program(p), keys.clone()))
+                    .collect()
             }
-            VoiceSource::Drums { kits, keys } => {
-                kits.iter().map(|&k| (PartSound::Kit(k), keys.clone())).collect()
-            }
+            VoiceSource::Drums { kits, keys } => kits
+                .iter()
+                .map(|&k| (PartSound::Kit(k), keys.clone()))
+                .collect(),
             VoiceSource::Clips => return None,
         };
         for (sound, keys) in sounds {
@@ -284,7 +291,9 @@ impl Composer {
 }
 
 fn vel(rng: &mut SceneRng, level: f64, spread: f64) -> u8 {
-    (level + spread * (rng.unit() * 2.0 - 1.0)).round().clamp(1.0, 127.0) as u8
+    (level + spread * (rng.unit() * 2.0 - 1.0))
+        .round()
+        .clamp(1.0, 127.0) as u8
 }
 
 fn drum_part(
@@ -321,7 +330,9 @@ fn drum_part(
                     let on = if four {
                         step % 4 == 0
                     } else {
-                        step == 0 || step == 8 || ([3, 6, 10, 14].contains(&step) && rng.chance(0.25))
+                        step == 0
+                            || step == 8
+                            || ([3, 6, 10, 14].contains(&step) && rng.chance(0.25))
                     };
                     if on {
                         let v = vel(rng, level, 10.0);
@@ -509,7 +520,12 @@ mod tests {
                 assert!(n.start_s >= 0.0 && n.start_s < 8.0 && n.end_s <= 8.0);
                 assert!((1..=127).contains(&n.velocity));
                 if let PartSound::Program(_) = p.sound {
-                    assert!((v.keys.0..=v.keys.1).contains(&n.key), "{}: {}", v.family, n.key);
+                    assert!(
+                        (v.keys.0..=v.keys.1).contains(&n.key),
+                        "{}: {}",
+                        v.family,
+                        n.key
+                    );
                 }
             }
         }
@@ -518,7 +534,9 @@ mod tests {
     #[test]
     fn study_walks_range_and_velocities() {
         let c = Composer::new(general_midi_voicings(), vec![], 0.0);
-        let s = c.study(4, 3, &[40, 80, 120], 0.5, 0.2).expect("bass has programs");
+        let s = c
+            .study(4, 3, &[40, 80, 120], 0.5, 0.2)
+            .expect("bass has programs");
         // 8 bass programs, keys 28..=55 every 3rd (10 keys), 3 velocities.
         assert_eq!(s.parts.len(), 8);
         assert!(s.parts.iter().all(|p| p.notes.len() == 30));

@@ -80,7 +80,10 @@ impl Mix {
             let rms = (energy / s.len() as f64).sqrt();
             let gain = STEM_REFERENCE_RMS / rms
                 * 10f64.powf(gains_db.get(i).copied().unwrap_or(0.0) / 20.0);
-            scaled.push((*family, s.iter().map(|&v| (f64::from(v) * gain) as f32).collect()));
+            scaled.push((
+                *family,
+                s.iter().map(|&v| (f64::from(v) * gain) as f32).collect(),
+            ));
         }
         let mut signal = vec![0.0_f32; n];
         for (_, s) in &scaled {

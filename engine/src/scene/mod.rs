@@ -63,14 +63,7 @@ pub enum SceneError {
 pub fn lantern_hall_families(style: &str) -> Option<&'static [&'static str]> {
     match style {
         "parlour" => Some(&["piano", "bowed strings", "reeds & flutes", "voice"]),
-        "dockside" => Some(&[
-            "kick",
-            "snare",
-            "cymbals",
-            "bass",
-            "driven guitar",
-            "brass",
-        ]),
+        "dockside" => Some(&["kick", "snare", "cymbals", "bass", "driven guitar", "brass"]),
         "neon" => Some(&["synth pad", "synth lead", "kick", "bass", "voice"]),
         _ => None,
     }

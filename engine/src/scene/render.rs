@@ -4,8 +4,8 @@
 //! The engine does no file I/O: the SoundFont arrives as any `Read` (or bytes) and clips as
 //! sample buffers the caller decoded.
 
-use super::composer::{Part, PartSound, Score};
 use super::SceneError;
+use super::composer::{Part, PartSound, Score};
 use rustysynth::{SoundFont, Synthesizer, SynthesizerSettings};
 use std::io::Read;
 use std::sync::Arc;
@@ -55,7 +55,12 @@ impl ClipBank {
 /// Places the clip excerpts of a [`PartSound::Clips`] part into a signal of `duration_s` at
 /// `sample_rate_hz` (clips must be at that rate), with short fades at both ends of each
 /// excerpt. Needs no SoundFont.
-pub fn place_clips(part: &Part, duration_s: f64, sample_rate_hz: u32, clips: &ClipBank) -> Vec<f32> {
+pub fn place_clips(
+    part: &Part,
+    duration_s: f64,
+    sample_rate_hz: u32,
+    clips: &ClipBank,
+) -> Vec<f32> {
     let sr = f64::from(sample_rate_hz);
     let n = (duration_s * sr).round().max(0.0) as usize;
     let mut out = vec![0.0_f32; n];
@@ -156,7 +161,12 @@ impl SoundFontRenderer {
         // (sample, is_on, key, velocity); offs sort before ons at the same sample.
         let mut events: Vec<(usize, bool, i32, i32)> = Vec::with_capacity(part.notes.len() * 2);
         for e in &part.notes {
-            events.push(((e.start_s * sr) as usize, true, i32::from(e.key), i32::from(e.velocity)));
+            events.push((
+                (e.start_s * sr) as usize,
+                true,
+                i32::from(e.key),
+                i32::from(e.velocity),
+            ));
             events.push(((e.end_s * sr) as usize, false, i32::from(e.key), 0));
         }
         events.sort_by_key(|&(t, on, k, _)| (t, on, k));
@@ -178,7 +188,11 @@ impl SoundFontRenderer {
         if n > at {
             synth.render(&mut left[at..n], &mut right[at..n]);
         }
-        Ok(left.iter().zip(&right).map(|(l, r)| 0.5 * (l + r)).collect())
+        Ok(left
+            .iter()
+            .zip(&right)
+            .map(|(l, r)| 0.5 * (l + r))
+            .collect())
     }
 
     /// Renders every part of `score` and sums them per family: `stems[f]` is family `f`'s

@@ -95,7 +95,11 @@ pub fn general_midi_voicings() -> Vec<FamilyVoicing> {
     vec![
         drums("kick", &[35, 36], Role::Kick),
         drums("snare", &[37, 38, 40], Role::Backbeat),
-        drums("cymbals", &[42, 44, 46, 49, 51, 52, 53, 55, 57, 59], Role::Cymbal),
+        drums(
+            "cymbals",
+            &[42, 44, 46, 49, 51, 52, 53, 55, 57, 59],
+            Role::Cymbal,
+        ),
         drums(
             "toms & hand percussion",
             &[
@@ -104,9 +108,19 @@ pub fn general_midi_voicings() -> Vec<FamilyVoicing> {
             Role::HandPercussion,
         ),
         programs("bass", &[32, 33, 34, 35, 36, 37, 38, 39], (28, 55), &[Bass]),
-        programs("piano", &[0, 1, 2, 3, 4, 5, 6, 7], (33, 96), &[Chords, Line]),
+        programs(
+            "piano",
+            &[0, 1, 2, 3, 4, 5, 6, 7],
+            (33, 96),
+            &[Chords, Line],
+        ),
         programs("organ", &[16, 17, 18, 19, 20], (36, 84), &[Chords, Pad]),
-        programs("clean guitar", &[24, 25, 26, 27, 28], (40, 79), &[Chords, Line]),
+        programs(
+            "clean guitar",
+            &[24, 25, 26, 27, 28],
+            (40, 79),
+            &[Chords, Line],
+        ),
         programs("driven guitar", &[29, 30], (40, 79), &[Chords, Line]),
         programs(
             "bowed strings",

@@ -102,12 +102,21 @@ pub fn evaluate_mix(
     let mut records = Vec::new();
     let quiet = 10f64.powf(QUIET_WINDOW_DB / 10.0);
     for w in 0..windows {
-        let (t0, t1) = (w as f64 * window_s, ((w + 1) as f64 * window_s).min(mix.duration_s()));
+        let (t0, t1) = (
+            w as f64 * window_s,
+            ((w + 1) as f64 * window_s).min(mix.duration_s()),
+        );
         if t1 - t0 < 0.5 * window_s || weight[w] <= 0.0 {
             continue;
         }
-        let (a, b) = ((t0 * sr) as usize, ((t1 * sr) as usize).min(mix.signal.len()));
-        let ms = mix.signal[a..b].iter().map(|&v| f64::from(v) * f64::from(v)).sum::<f64>()
+        let (a, b) = (
+            (t0 * sr) as usize,
+            ((t1 * sr) as usize).min(mix.signal.len()),
+        );
+        let ms = mix.signal[a..b]
+            .iter()
+            .map(|&v| f64::from(v) * f64::from(v))
+            .sum::<f64>()
             / (b - a).max(1) as f64;
         if ms < quiet {
             continue;
@@ -158,7 +167,10 @@ fn feed_known_presence(
 /// The unexplained share of every column of `mix` when the amount stage is given the families
 /// truly present, as (column energy, unexplained share) pairs. With a palette whose tolerance is
 /// 0 that share is the raw residual fraction: palettes calibrate their tolerance from it.
-pub fn known_presence_residuals(palette: &Palette, mix: &Mix) -> Result<Vec<(f64, f64)>, SharesError> {
+pub fn known_presence_residuals(
+    palette: &Palette,
+    mix: &Mix,
+) -> Result<Vec<(f64, f64)>, SharesError> {
     let settings = SharesSettings {
         response_ms: 0.0,
         mode: SharesMode::KnownPresence,
@@ -298,15 +310,32 @@ impl Counts {
         }
     }
     fn prf(&self) -> (f64, f64, f64) {
-        let p = if self.tp + self.fp == 0 { 0.0 } else { self.tp as f64 / (self.tp + self.fp) as f64 };
-        let r = if self.tp + self.fneg == 0 { 0.0 } else { self.tp as f64 / (self.tp + self.fneg) as f64 };
-        let f = if self.tp == 0 { 0.0 } else { 2.0 * self.tp as f64 / (2 * self.tp + self.fp + self.fneg) as f64 };
+        let p = if self.tp + self.fp == 0 {
+            0.0
+        } else {
+            self.tp as f64 / (self.tp + self.fp) as f64
+        };
+        let r = if self.tp + self.fneg == 0 {
+            0.0
+        } else {
+            self.tp as f64 / (self.tp + self.fneg) as f64
+        };
+        let f = if self.tp == 0 {
+            0.0
+        } else {
+            2.0 * self.tp as f64 / (2 * self.tp + self.fp + self.fneg) as f64
+        };
         (p, r, f)
     }
 }
 
 fn tv(est: &[f64], u: f64, truth: &[f64]) -> f64 {
-    0.5 * (est.iter().zip(truth).map(|(a, b)| (a - b).abs()).sum::<f64>() + u.abs())
+    0.5 * (est
+        .iter()
+        .zip(truth)
+        .map(|(a, b)| (a - b).abs())
+        .sum::<f64>()
+        + u.abs())
 }
 
 /// Sums family values into groups.
@@ -330,7 +359,8 @@ fn level(records: &[&WindowRecord], names: &[String], group_of: &[usize]) -> Lev
     let mut nmf_mae = (0.0, 0usize);
     let mut counts = Counts::default();
     let mut nmf_counts = Counts::default();
-    let mut per: Vec<(f64, f64, f64, usize, Counts, Counts)> = vec![(0.0, 0.0, 0.0, 0, Counts::default(), Counts::default()); g];
+    let mut per: Vec<(f64, f64, f64, usize, Counts, Counts)> =
+        vec![(0.0, 0.0, 0.0, 0, Counts::default(), Counts::default()); g];
     for r in records {
         let truth = group(&r.truth, group_of, g);
         let est = group(&r.est, group_of, g);

@@ -116,7 +116,10 @@ impl ColumnStream {
         let bands = self.bands;
         self.stacked.copy_within(bands.., 0);
         let n = self.stacked.len();
-        for (s, a) in self.stacked[n - bands..].iter_mut().zip(self.acc.iter_mut()) {
+        for (s, a) in self.stacked[n - bands..]
+            .iter_mut()
+            .zip(self.acc.iter_mut())
+        {
             *s = *a * inv;
             *a = 0.0;
         }

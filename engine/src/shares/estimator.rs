@@ -197,11 +197,11 @@ impl SharesEstimator {
         for (f, fam) in palette.families().iter().enumerate() {
             section_of[f] = fam.section;
         }
-        let context_len = (spec.presence_context_s / columns.column_period_s()).round().max(1.0) as usize;
+        let context_len = (spec.presence_context_s / columns.column_period_s())
+            .round()
+            .max(1.0) as usize;
         let model = palette.presence().cloned();
-        let scratch_len = model
-            .as_ref()
-            .map_or(0, |m| m.features + m.hidden);
+        let scratch_len = model.as_ref().map_or(0, |m| m.features + m.hidden);
         // One-sided Hann-windowed power of a sine of RMS σ sums to 0.1875·n²·σ² (Parseval with
         // the Hann window's mean square 3/8, half of it on the positive side).
         let n = framing.frame_len as f64;
@@ -331,7 +331,11 @@ impl SharesEstimator {
 
     fn family_energies(&mut self, from_amount: bool) -> f32 {
         self.fam_energy.fill(0.0);
-        let h = if from_amount { &self.h_amount } else { &self.h_full };
+        let h = if from_amount {
+            &self.h_amount
+        } else {
+            &self.h_full
+        };
         for (&hk, &f) in h.iter().zip(&self.family_of_atom) {
             self.fam_energy[f] += hk;
         }
@@ -374,8 +378,13 @@ impl SharesEstimator {
         if !(total.is_finite() && total > self.silence_energy * stack as f32) {
             self.fam_energy.fill(0.0);
             self.h_full.fill(0.0);
-            self.context
-                .push(self.columns.newest(), 0.0, &self.h_full, &self.fam_energy, 0.0);
+            self.context.push(
+                self.columns.newest(),
+                0.0,
+                &self.h_full,
+                &self.fam_energy,
+                0.0,
+            );
             self.update.time_s = time_s;
             self.update.energy = 0.0;
             self.update.raw = Shares::default();
@@ -387,7 +396,8 @@ impl SharesEstimator {
         }
         // Stage 0: NMF alone.
         let v = self.columns.stacked();
-        self.solver.solve(&self.dict, v, &mut self.h_full, &self.all_active);
+        self.solver
+            .solve(&self.dict, v, &mut self.h_full, &self.all_active);
         let residual_full = self.residual_fraction(self.columns.stacked(), total);
         let explained = self.family_energies(false);
         let nmf_alone = self.shares_from(explained, residual_full);
@@ -435,8 +445,12 @@ impl SharesEstimator {
                 *a = present[f];
             }
             self.h_amount.copy_from_slice(&self.h_full);
-            self.solver
-                .solve(&self.dict, self.columns.stacked(), &mut self.h_amount, &self.active);
+            self.solver.solve(
+                &self.dict,
+                self.columns.stacked(),
+                &mut self.h_amount,
+                &self.active,
+            );
             let residual = self.residual_fraction(self.columns.stacked(), total);
             let explained = self.family_energies(true);
             self.shares_from(explained, residual)
@@ -450,7 +464,8 @@ impl SharesEstimator {
         for f in 0..self.families {
             self.ema_num[f] = a * self.ema_num[f] + (1.0 - a) * e * f64::from(raw.share[f]);
         }
-        self.ema_unexplained = a * self.ema_unexplained + (1.0 - a) * e * f64::from(raw.unexplained);
+        self.ema_unexplained =
+            a * self.ema_unexplained + (1.0 - a) * e * f64::from(raw.unexplained);
         let mut smoothed = raw;
         if self.ema_den > 0.0 {
             let mut sum = self.ema_unexplained / self.ema_den;
@@ -478,7 +493,9 @@ impl SharesEstimator {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::palette::{AnalysisSpec, Family, LearnSettings, Provenance, learn_family_atoms, stacked_columns};
+    use crate::palette::{
+        AnalysisSpec, Family, LearnSettings, Provenance, learn_family_atoms, stacked_columns,
+    };
     use crate::scene::{Mix, SceneRng};
     use crate::shares::check::presence_rows;
     use crate::shares::presence::{PresenceTraining, feature_count, train_presence};
@@ -500,7 +517,9 @@ mod tests {
                     let end = (start + note).min(n);
                     for (j, s) in x[start..end].iter_mut().enumerate() {
                         let t = j as f64 / SR;
-                        let v: f64 = (1..6).map(|h| (TAU * f0 * h as f64 * t).sin() / h as f64).sum();
+                        let v: f64 = (1..6)
+                            .map(|h| (TAU * f0 * h as f64 * t).sin() / h as f64)
+                            .sum();
                         *s = (0.2 * v) as f32;
                     }
                 }
@@ -538,7 +557,8 @@ mod tests {
         };
         let mut atoms = Vec::new();
         for f in 0..3 {
-            let cols = stacked_columns(&family_signal(f, 10 + f as u64, 4.0), SR, &analysis).expect("bands");
+            let cols = stacked_columns(&family_signal(f, 10 + f as u64, 4.0), SR, &analysis)
+                .expect("bands");
             atoms.extend(learn_family_atoms(&cols, analysis.dims(), &learn).expect("material"));
         }
         let families = ["tone", "noise", "click"]
@@ -574,7 +594,8 @@ mod tests {
             if stems.is_empty() {
                 continue;
             }
-            let members: Vec<(usize, &[f32])> = stems.iter().map(|(f, s)| (*f, s.as_slice())).collect();
+            let members: Vec<(usize, &[f32])> =
+                stems.iter().map(|(f, s)| (*f, s.as_slice())).collect();
             let gains: Vec<f64> = members.iter().map(|_| rng.uniform(-20.0, 0.0)).collect();
             let mix = Mix::new(&members, &gains, SR as u32);
             presence_rows(&palette, &mix, &mut rows, &mut labels).expect("rows");
@@ -616,7 +637,10 @@ mod tests {
             let mut x = test_mix();
             x.extend(std::iter::repeat_n(0.0, SR as usize));
             let updates = run(&p, &x, 4096);
-            assert!(updates.len() as f64 >= 10.0 * 4.0, "≥ 10 updates per second");
+            assert!(
+                updates.len() as f64 >= 10.0 * 4.0,
+                "≥ 10 updates per second"
+            );
             for u in &updates {
                 for s in [&u.raw, &u.smoothed, &u.nmf_alone] {
                     assert!(s.share.iter().all(|v| v.is_finite()) && s.unexplained.is_finite());
@@ -652,7 +676,11 @@ mod tests {
                     for f in 0..3 {
                         for (s, t) in [(&a.smoothed, &b.smoothed), (&a.raw, &b.raw)] {
                             let d = (s.share[f] - t.share[f]).abs();
-                            assert!(d <= 0.01, "presence {presence}, gain {gain}, family {f}, {} s: {d}", a.time_s);
+                            assert!(
+                                d <= 0.01,
+                                "presence {presence}, gain {gain}, family {f}, {} s: {d}",
+                                a.time_s
+                            );
                         }
                     }
                 }
@@ -702,7 +730,10 @@ mod tests {
         // raw ones.
         let updates = run(&p, &test_mix(), 4096);
         let jitter = |f: fn(&SharesUpdate) -> f32| -> f32 {
-            updates.windows(2).map(|w| (f(&w[1]) - f(&w[0])).abs()).sum()
+            updates
+                .windows(2)
+                .map(|w| (f(&w[1]) - f(&w[0])).abs())
+                .sum()
         };
         assert!(jitter(|u| u.smoothed.share[0]) < 0.5 * jitter(|u| u.raw.share[0]));
     }

@@ -115,7 +115,11 @@ impl ActivationSolver {
         let floor = LAMBDA_FLOOR * total / dims as f32;
         for (x, &a) in h.iter_mut().zip(active) {
             *x = if a {
-                if x.is_finite() { x.max(REVIVE_FRACTION * mean_h) } else { mean_h }
+                if x.is_finite() {
+                    x.max(REVIVE_FRACTION * mean_h)
+                } else {
+                    mean_h
+                }
             } else {
                 0.0
             };
@@ -375,7 +379,10 @@ mod tests {
         let mut h2 = vec![0.0; 3];
         s.solve(&dict, &loud, &mut h2, &[true; 3]);
         for (a, b) in h.iter().zip(&h2) {
-            assert!((a * 100.0 - b).abs() <= 1e-3 * b.abs().max(1.0), "{h:?} {h2:?}");
+            assert!(
+                (a * 100.0 - b).abs() <= 1e-3 * b.abs().max(1.0),
+                "{h:?} {h2:?}"
+            );
         }
     }
 

@@ -71,7 +71,11 @@ impl PresenceModel {
 
     /// Inputs of the output layer.
     fn inputs(&self) -> usize {
-        if self.hidden == 0 { self.features } else { self.hidden }
+        if self.hidden == 0 {
+            self.features
+        } else {
+            self.hidden
+        }
     }
 
     /// Checks the shapes and values; `Err` names the first problem.
@@ -90,7 +94,10 @@ impl PresenceModel {
             ));
         }
         if self.hidden > MAX_HIDDEN {
-            return Err(format!("{} hidden units; at most {MAX_HIDDEN}", self.hidden));
+            return Err(format!(
+                "{} hidden units; at most {MAX_HIDDEN}",
+                self.hidden
+            ));
         }
         let expect = [
             ("mean", self.mean.len(), self.features),
@@ -107,7 +114,13 @@ impl PresenceModel {
             }
         }
         let all = [
-            &self.mean, &self.scale, &self.w1, &self.b1, &self.w2, &self.b2, &self.thresholds,
+            &self.mean,
+            &self.scale,
+            &self.w1,
+            &self.b1,
+            &self.w2,
+            &self.b2,
+            &self.thresholds,
         ];
         if all.iter().any(|v| v.iter().any(|x| !x.is_finite())) {
             return Err("presence model holds a value that is not finite".into());
@@ -199,13 +212,20 @@ pub fn train_presence(
     let mut scale = vec![1.0_f32; features];
     if n > 0 {
         for j in 0..features {
-            let m = (0..n).map(|i| f64::from(rows[i * features + j])).sum::<f64>() / n as f64;
+            let m = (0..n)
+                .map(|i| f64::from(rows[i * features + j]))
+                .sum::<f64>()
+                / n as f64;
             let v = (0..n)
                 .map(|i| (f64::from(rows[i * features + j]) - m).powi(2))
                 .sum::<f64>()
                 / n as f64;
             mean[j] = m as f32;
-            scale[j] = if v.sqrt() > 1e-9 { v.sqrt() as f32 } else { 1.0 };
+            scale[j] = if v.sqrt() > 1e-9 {
+                v.sqrt() as f32
+            } else {
+                1.0
+            };
         }
     }
     let z: Vec<f32> = (0..n * features)
@@ -219,17 +239,27 @@ pub fn train_presence(
     let (fit, tune) = order.split_at(n - held);
     let hidden = opts.hidden.min(MAX_HIDDEN);
     let inputs = if hidden == 0 { features } else { hidden };
-    let he = |fan_in: usize, rng: &mut SceneRng| (rng.normal() * (2.0 / fan_in.max(1) as f64).sqrt()) as f32;
+    let he = |fan_in: usize, rng: &mut SceneRng| {
+        (rng.normal() * (2.0 / fan_in.max(1) as f64).sqrt()) as f32
+    };
     let mut params = Params {
-        w1: (0..hidden * features).map(|_| he(features, &mut rng)).collect(),
+        w1: (0..hidden * features)
+            .map(|_| he(features, &mut rng))
+            .collect(),
         b1: vec![0.0; hidden],
-        w2: (0..families * inputs).map(|_| 0.5 * he(inputs, &mut rng)).collect(),
+        w2: (0..families * inputs)
+            .map(|_| 0.5 * he(inputs, &mut rng))
+            .collect(),
         b2: vec![0.0; families],
     };
     // Class balance: positives weighted by (negatives / positives) per family, capped.
     let pos_weight: Vec<f32> = (0..families)
         .map(|f| {
-            let pos = fit.iter().filter(|&&i| labels[i * families + f]).count().max(1) as f32;
+            let pos = fit
+                .iter()
+                .filter(|&&i| labels[i * families + f])
+                .count()
+                .max(1) as f32;
             let neg = (fit.len() as f32 - pos).max(1.0);
             (neg / pos).clamp(0.2, 20.0).sqrt()
         })
@@ -271,7 +301,8 @@ pub fn train_presence(
                         }
                         let g = dh[j];
                         grads.b1[j] += g;
-                        for (gw, &v) in grads.w1[j * features..(j + 1) * features].iter_mut().zip(x) {
+                        for (gw, &v) in grads.w1[j * features..(j + 1) * features].iter_mut().zip(x)
+                        {
                             *gw += g * v;
                         }
                     }
@@ -285,7 +316,14 @@ pub fn train_presence(
     // Thresholds: maximise F1 on the held-back rows (0.5 when there are none).
     let mut probs = vec![0.0_f32; held * families];
     for (r, &i) in tune.iter().enumerate() {
-        forward(&params, &z[i * features..(i + 1) * features], features, hidden, &mut hbuf, &mut out);
+        forward(
+            &params,
+            &z[i * features..(i + 1) * features],
+            features,
+            hidden,
+            &mut hbuf,
+            &mut out,
+        );
         probs[r * families..(r + 1) * families].copy_from_slice(&out);
     }
     let thresholds = (0..families)
@@ -304,7 +342,11 @@ pub fn train_presence(
                         _ => {}
                     }
                 }
-                let f1 = if tp == 0 { 0.0 } else { 2.0 * tp as f64 / (2 * tp + fp + fneg) as f64 };
+                let f1 = if tp == 0 {
+                    0.0
+                } else {
+                    2.0 * tp as f64 / (2 * tp + fp + fneg) as f64
+                };
                 if f1 > best.1 {
                     best = (t, f1);
                 }
@@ -331,14 +373,24 @@ fn forward(p: &Params, x: &[f32], d: usize, hidden: usize, hbuf: &mut [f32], out
         x
     } else {
         for (j, hv) in hbuf.iter_mut().enumerate() {
-            let a = p.b1[j] + p.w1[j * d..(j + 1) * d].iter().zip(x).map(|(w, v)| w * v).sum::<f32>();
+            let a = p.b1[j]
+                + p.w1[j * d..(j + 1) * d]
+                    .iter()
+                    .zip(x)
+                    .map(|(w, v)| w * v)
+                    .sum::<f32>();
             *hv = a.max(0.0);
         }
         hbuf
     };
     let n = inputs.len();
     for (f, o) in out.iter_mut().enumerate() {
-        let a = p.b2[f] + p.w2[f * n..(f + 1) * n].iter().zip(inputs).map(|(w, v)| w * v).sum::<f32>();
+        let a = p.b2[f]
+            + p.w2[f * n..(f + 1) * n]
+                .iter()
+                .zip(inputs)
+                .map(|(w, v)| w * v)
+                .sum::<f32>();
         *o = sigmoid(a);
     }
 }
@@ -501,7 +553,8 @@ impl PresenceContext {
         let mean = self.col_energy[i] / bands.max(1) as f32;
         self.flatness[i] = if mean > 0.0 {
             let floor = 1e-6 * mean;
-            let log_mean = column.iter().map(|&v| (v + floor).ln()).sum::<f32>() / bands.max(1) as f32;
+            let log_mean =
+                column.iter().map(|&v| (v + floor).ln()).sum::<f32>() / bands.max(1) as f32;
             (log_mean.exp() / mean).clamp(0.0, 1.0)
         } else {
             0.0
@@ -538,7 +591,10 @@ impl PresenceContext {
             x[o + k] = (s / total).clamp(0.0, 1.0).sqrt();
         }
         let o = o + self.atoms;
-        let col_total: f32 = self.col_energy[..n].iter().sum::<f32>().max(f32::MIN_POSITIVE);
+        let col_total: f32 = self.col_energy[..n]
+            .iter()
+            .sum::<f32>()
+            .max(f32::MIN_POSITIVE);
         for g in 0..COARSE_BANDS {
             let s: f32 = (0..n).map(|c| self.coarse[c * COARSE_BANDS + g]).sum();
             x[o + g] = (s / col_total + 1e-7).log10();

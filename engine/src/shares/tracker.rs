@@ -88,7 +88,11 @@ impl SharesTracker {
 
     fn frame(&mut self, on_column: &mut impl FnMut(&mut SharesEstimator)) {
         self.spectrum.process(self.framer.frame());
-        if self.estimator.process_power(self.spectrum.power()).is_some() {
+        if self
+            .estimator
+            .process_power(self.spectrum.power())
+            .is_some()
+        {
             on_column(&mut self.estimator);
         }
         self.framer.advance();
