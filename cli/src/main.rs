@@ -11,6 +11,7 @@
 
 mod analyze;
 mod decode;
+mod palette;
 mod plot;
 mod report;
 mod resample;
@@ -46,6 +47,8 @@ enum Command {
     /// Analyse audio files and folders: a summary table, timelines, plots.
     #[command(after_help = EXIT_CODES)]
     Analyze(AnalyzeArgs),
+    /// Build instrument palettes from recordings or a SoundFont, and measure them.
+    Palette(palette::PaletteArgs),
 }
 
 #[derive(Args)]
@@ -132,6 +135,13 @@ fn main() -> ExitCode {
         }
     };
     match cli.command {
+        Command::Palette(args) => match palette::run(args) {
+            Ok(()) => ExitCode::SUCCESS,
+            Err(err) => {
+                eprintln!("weft: {err:#}");
+                ExitCode::from(1)
+            }
+        },
         Command::Analyze(args) => match analyze(args) {
             Ok(code) => code,
             Err(Failure::Usage(Usage(message))) => {

@@ -283,11 +283,14 @@ fn hz(value: f32) -> String {
     }
 }
 
+/// Reads one value out of a history cell.
+type Pick = fn(&crate::snapshot::TrendCell) -> f32;
+
 /// Compact timbre readouts, each with a short trend line over the history span.
 fn timbre_view(ui: &mut egui::Ui, snap: &Snapshot) {
     let t = &snap.timbre;
     let history = snap.history();
-    let rows: [(&str, String, fn(&crate::snapshot::TrendCell) -> f32); 4] = [
+    let rows: [(&str, String, Pick); 4] = [
         ("Centroid", hz(t.centroid_hz), |c| c.centroid_hz),
         ("Roll-off", hz(t.rolloff_hz), |c| c.rolloff_hz),
         ("Flatness", format!("{:.3}", t.flatness), |c| c.flatness),
