@@ -205,6 +205,49 @@ pub struct LinearModel {
     pub(crate) intercepts: Vec<f64>,
 }
 
+/// Checks the settings the linear models share: a positive `C` and tolerance, at least one
+/// iteration.
+pub(super) fn validate_linear(
+    c: f64,
+    tolerance: f64,
+    max_iterations: usize,
+) -> Result<(), StyleError> {
+    if !(c.is_finite() && c > 0.0) {
+        return Err(StyleError::InvalidSetting {
+            name: "c",
+            value: c.to_string(),
+            reason: "must be a positive number",
+        });
+    }
+    if !(tolerance.is_finite() && tolerance > 0.0) {
+        return Err(StyleError::InvalidSetting {
+            name: "tolerance",
+            value: tolerance.to_string(),
+            reason: "must be a positive number",
+        });
+    }
+    if max_iterations == 0 {
+        return Err(StyleError::InvalidSetting {
+            name: "max_iterations",
+            value: "0".into(),
+            reason: "must be at least 1",
+        });
+    }
+    Ok(())
+}
+
+/// Checks that there is one label per row and at least one row.
+pub(super) fn check_labels(z: &FeatureMatrix, y: &[usize]) -> Result<(), StyleError> {
+    if y.len() != z.n_rows() || y.is_empty() {
+        return Err(StyleError::LengthMismatch {
+            what: "labels",
+            expected: z.n_rows(),
+            actual: y.len(),
+        });
+    }
+    Ok(())
+}
+
 impl LinearModel {
     /// Number of outputs for `n_classes` classes.
     pub(crate) fn outputs_for(n_classes: usize) -> usize {

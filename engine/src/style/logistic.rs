@@ -56,28 +56,7 @@ impl LogisticParams {
     /// # Errors
     /// [`StyleError::InvalidSetting`] for a non-positive `C` or tolerance, or zero iterations.
     pub fn validate(&self) -> Result<(), StyleError> {
-        if !(self.c.is_finite() && self.c > 0.0) {
-            return Err(StyleError::InvalidSetting {
-                name: "c",
-                value: self.c.to_string(),
-                reason: "must be a positive number",
-            });
-        }
-        if !(self.tolerance.is_finite() && self.tolerance > 0.0) {
-            return Err(StyleError::InvalidSetting {
-                name: "tolerance",
-                value: self.tolerance.to_string(),
-                reason: "must be a positive number",
-            });
-        }
-        if self.max_iterations == 0 {
-            return Err(StyleError::InvalidSetting {
-                name: "max_iterations",
-                value: "0".into(),
-                reason: "must be at least 1",
-            });
-        }
-        Ok(())
+        super::classifier::validate_linear(self.c, self.tolerance, self.max_iterations)
     }
 }
 
@@ -92,13 +71,7 @@ pub fn fit(
     params: &LogisticParams,
 ) -> Result<LinearModel, StyleError> {
     params.validate()?;
-    if y.len() != z.n_rows() || y.is_empty() {
-        return Err(StyleError::LengthMismatch {
-            what: "labels",
-            expected: z.n_rows(),
-            actual: y.len(),
-        });
-    }
+    super::classifier::check_labels(z, y)?;
     let outputs = LinearModel::outputs_for(n_classes);
     let mut weights = Vec::with_capacity(outputs);
     let mut intercepts = Vec::with_capacity(outputs);
