@@ -9,7 +9,7 @@
 use serde::Serialize;
 use weft_engine::FrameResult;
 use weft_engine::level::amplitude_to_db;
-use weft_engine::timbre::{Descriptors, N_CONTRAST, N_MFCC};
+use weft_engine::timbre::{Descriptors, N_CONTRAST, N_MFCC, N_SCALARS};
 
 /// One analysis frame, as `--frames` writes it.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
@@ -125,23 +125,12 @@ pub struct WindowDescriptors {
     pub contrast_db: ArrayStat<N_CONTRAST>,
 }
 
-/// Scalars summarised per window, in [`WindowDescriptors`] order.
-const N_SCALARS: usize = 8;
 /// Values summarised per window: the scalars, the MFCCs, the contrast bands.
 const N_SUMMARISED: usize = N_SCALARS + N_MFCC + N_CONTRAST;
 
 fn summarised_values(d: &Descriptors) -> [f64; N_SUMMARISED] {
     let mut v = [0.0; N_SUMMARISED];
-    let scalars = [
-        d.centroid_hz,
-        d.bandwidth_hz,
-        d.rolloff_hz,
-        d.rolloff_custom_hz,
-        d.flatness,
-        d.flux_db,
-        d.zero_crossings_per_sample,
-        d.rms,
-    ];
+    let scalars = d.scalars();
     for (slot, x) in v
         .iter_mut()
         .zip(scalars.iter().chain(&d.mfcc).chain(&d.contrast_db))

@@ -200,6 +200,26 @@ fn serialize_array<S: Serializer, const N: usize>(
     serializer.collect_seq(values.iter())
 }
 
+/// How many values [`Descriptors::scalars`] returns.
+pub const N_SCALARS: usize = 8;
+
+impl Descriptors {
+    /// The one-number descriptors, in this order: centroid (Hz), bandwidth (Hz), roll-off (Hz),
+    /// custom roll-off (Hz), flatness, flux (dB), zero crossings per sample, RMS (linear).
+    pub fn scalars(&self) -> [f32; N_SCALARS] {
+        [
+            self.centroid_hz,
+            self.bandwidth_hz,
+            self.rolloff_hz,
+            self.rolloff_custom_hz,
+            self.flatness,
+            self.flux_db,
+            self.zero_crossings_per_sample,
+            self.rms,
+        ]
+    }
+}
+
 impl Default for Descriptors {
     /// All zeros (not the values of silence: see the module documentation for those).
     fn default() -> Self {
@@ -1168,16 +1188,7 @@ mod tests {
     }
 
     fn assert_all_finite(d: &Descriptors) {
-        let scalars = [
-            d.centroid_hz,
-            d.bandwidth_hz,
-            d.rolloff_hz,
-            d.rolloff_custom_hz,
-            d.flatness,
-            d.flux_db,
-            d.zero_crossings_per_sample,
-            d.rms,
-        ];
+        let scalars = d.scalars();
         let all = scalars
             .iter()
             .chain(&d.mel_power)
