@@ -154,6 +154,37 @@ impl Tree {
     }
 }
 
+impl Tree {
+    /// Walks this tree for `row`, crediting each change of `class`'s fraction along the path to
+    /// the split feature (Saabas 2014) in `contributions`. Returns the leaf's node index and the
+    /// root's class fraction. `k` is the number of classes.
+    fn walk_with_contributions(
+        &self,
+        row: &[f32],
+        class: usize,
+        k: usize,
+        contributions: &mut [f64],
+    ) -> (usize, f64) {
+        let root = f64::from(self.values[class]);
+        let mut value = root;
+        let mut i = 0;
+        loop {
+            let n = self.nodes[i];
+            if n.left == LEAF {
+                return (i, root);
+            }
+            i = if row[n.feature as usize] <= n.threshold {
+                n.left
+            } else {
+                n.right
+            } as usize;
+            let child = f64::from(self.values[i * k + class]);
+            contributions[n.feature as usize] += child - value;
+            value = child;
+        }
+    }
+}
+
 /// A trained random forest over standardised features.
 #[derive(Debug, Clone, PartialEq)]
 pub struct RandomForest {
@@ -610,24 +641,9 @@ impl RandomForest {
         let mut bias = 0.0;
         let mut probability = 0.0;
         for tree in &self.trees {
-            let mut i = 0;
-            let mut value = f64::from(tree.values[class]);
-            bias += value;
-            loop {
-                let n = tree.nodes[i];
-                if n.left == LEAF {
-                    break;
-                }
-                i = if row[n.feature as usize] <= n.threshold {
-                    n.left
-                } else {
-                    n.right
-                } as usize;
-                let child = f64::from(tree.values[i * k + class]);
-                contributions[n.feature as usize] += child - value;
-                value = child;
-            }
-            probability += value;
+            let (leaf, root) = tree.walk_with_contributions(row, class, k, contributions);
+            bias += root;
+            probability += f64::from(tree.values[leaf * k + class]);
         }
         let n = self.trees.len() as f64;
         for c in contributions.iter_mut() {
@@ -657,23 +673,8 @@ impl RandomForest {
         let k = self.n_classes;
         let mut bias = 0.0;
         for tree in &self.trees {
-            let mut i = 0;
-            let mut value = f64::from(tree.values[class]);
-            bias += value;
-            loop {
-                let n = tree.nodes[i];
-                if n.left == LEAF {
-                    break;
-                }
-                i = if row[n.feature as usize] <= n.threshold {
-                    n.left
-                } else {
-                    n.right
-                } as usize;
-                let child = f64::from(tree.values[i * k + class]);
-                contributions[n.feature as usize] += child - value;
-                value = child;
-            }
+            let (i, root) = tree.walk_with_contributions(row, class, k, contributions);
+            bias += root;
             for (p, &v) in proba.iter_mut().zip(&tree.values[i * k..(i + 1) * k]) {
                 *p += f64::from(v);
             }
