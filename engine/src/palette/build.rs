@@ -343,22 +343,26 @@ pub fn build_palette(
         plan.training_mixes
     ));
     let candidates: Vec<usize> = (0..nf).collect();
+    // Training mix `i`, the same for the presence rows and the tolerance calibration.
+    let training_mix = |i: usize| {
+        let seed = SceneRng::derive(plan.seed ^ TRAIN_STREAM, i as u64).next_u64();
+        render_mix(
+            renderer,
+            composer,
+            clips,
+            seed,
+            &candidates,
+            plan.max_families,
+            plan.gain_range_db,
+            plan.mix_s,
+            plan.sample_rate_hz,
+        )
+    };
     let rows = parallel(
         plan.training_mixes,
         plan.threads,
         |i| -> Result<(Vec<f32>, Vec<bool>), BuildError> {
-            let seed = SceneRng::derive(plan.seed ^ TRAIN_STREAM, i as u64).next_u64();
-            let mix = render_mix(
-                renderer,
-                composer,
-                clips,
-                seed,
-                &candidates,
-                plan.max_families,
-                plan.gain_range_db,
-                plan.mix_s,
-                plan.sample_rate_hz,
-            )?;
+            let mix = training_mix(i)?;
             let mut rows = Vec::new();
             let mut labels = Vec::new();
             presence_rows(&palette, &mix, &mut rows, &mut labels)?;
@@ -391,18 +395,7 @@ pub fn build_palette(
         n,
         plan.threads,
         |i| -> Result<Vec<(f64, f64)>, BuildError> {
-            let seed = SceneRng::derive(plan.seed ^ TRAIN_STREAM, i as u64).next_u64();
-            let mix = render_mix(
-                renderer,
-                composer,
-                clips,
-                seed,
-                &candidates,
-                plan.max_families,
-                plan.gain_range_db,
-                plan.mix_s,
-                plan.sample_rate_hz,
-            )?;
+            let mix = training_mix(i)?;
             Ok(known_presence_residuals(&calib, &mix)?)
         },
     );
