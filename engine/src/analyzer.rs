@@ -8,6 +8,9 @@
 //! - **Live**: [`Analyzer::process`] per block, then (for a finite clip) [`Analyzer::finish`].
 //!   Frames come out as soon as they are complete; the descriptors use the live dB convention
 //!   (no whole-clip `top_db` floor; see [`crate::timbre`]).
+//! - **Family shares**: an analyzer built with [`Analyzer::with_palette`] also feeds every
+//!   frame's power spectrum (the same FFT the descriptors use) to a [`SharesEstimator`]; each
+//!   [`FrameResult`] carries the latest shares ([`FrameShares`]).
 //! - **Offline, equal to librosa**: [`Analyzer::analyze_clip`] takes the whole clip and returns
 //!   every frame with librosa's whole-clip floor applied (what `weft analyze --frames` prints).
 //!
@@ -16,6 +19,8 @@
 
 use crate::frames::{FrameConfig, Framer, FramingError};
 use crate::level::Level;
+use crate::palette::Palette;
+use crate::shares::{Shares, SharesError, SharesEstimator, SharesSettings};
 use crate::timbre::{Descriptors, FloorRecord, Timbre, TimbreError, TimbreOptions};
 use thiserror::Error;
 
@@ -95,6 +100,20 @@ pub struct FrameResult {
     pub level: Level,
     /// The frame's timbre descriptors (of the mid signal).
     pub descriptors: Descriptors,
+    /// The latest family shares (all zero, `families == 0`, without a palette).
+    pub shares: FrameShares,
+}
+
+/// The family shares a frame carries: those of the latest completed column (columns are
+/// longer than the hop, so several frames carry the same values).
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct FrameShares {
+    /// Whether a column completed on this frame (the values are new).
+    pub updated: bool,
+    /// The column's shares, unsmoothed (what window statistics summarise).
+    pub raw: Shares,
+    /// The shares smoothed with the response time (what a meter shows).
+    pub smoothed: Shares,
 }
 
 /// Streams the analysis signal through every measurement. Allocates only in [`Analyzer::new`]
@@ -105,6 +124,7 @@ pub struct Analyzer {
     mid: Framer,
     side: Framer,
     timbre: Timbre,
+    shares: Option<SharesEstimator>,
     frames_done: u64,
     samples_in: u64,
     /// Whether [`Analyzer::finish`] is feeding the trailing centre padding.
@@ -125,11 +145,42 @@ impl Analyzer {
             mid: Framer::new(settings.framing),
             side: Framer::new(settings.framing),
             timbre,
+            shares: None,
             frames_done: 0,
             samples_in: 0,
             finishing: false,
             result: FrameResult::default(),
         }
+    }
+
+    /// An analyzer that also estimates family shares with `palette` (see [`crate::shares`]).
+    ///
+    /// # Errors
+    /// When the palette's bands cannot be built at this rate and framing, or the shares
+    /// settings are out of range.
+    ///
+    /// # Panics
+    /// As [`Analyzer::new`].
+    pub fn with_palette(
+        settings: AnalysisSettings,
+        palette: &Palette,
+        shares: SharesSettings,
+    ) -> Result<Self, SharesError> {
+        let estimator =
+            SharesEstimator::new(palette, shares, settings.sample_rate_hz, settings.framing)?;
+        let mut analyzer = Self::new(settings);
+        analyzer.shares = Some(estimator);
+        Ok(analyzer)
+    }
+
+    /// The shares estimator, when built with a palette.
+    pub fn shares_estimator(&self) -> Option<&SharesEstimator> {
+        self.shares.as_ref()
+    }
+
+    /// The shares estimator, to change its response time.
+    pub fn shares_estimator_mut(&mut self) -> Option<&mut SharesEstimator> {
+        self.shares.as_mut()
     }
 
     /// The settings this analyzer was built with.
@@ -152,6 +203,10 @@ impl Analyzer {
         self.mid.reset();
         self.side.reset();
         self.timbre.reset();
+        if let Some(est) = &mut self.shares {
+            est.reset();
+        }
+        self.result.shares = FrameShares::default();
         self.frames_done = 0;
         self.samples_in = 0;
         self.finishing = false;
@@ -261,6 +316,16 @@ impl Analyzer {
             .signal_range(self.frames_done, self.finishing.then_some(self.samples_in));
         self.timbre
             .describe(self.mid.frame(), signal, &mut self.result.descriptors);
+        self.result.shares.updated = false;
+        if let Some(est) = &mut self.shares
+            && let Some(update) = est.process_power(self.timbre.power())
+        {
+            self.result.shares = FrameShares {
+                updated: true,
+                raw: update.raw,
+                smoothed: update.smoothed,
+            };
+        }
         self.frames_done += 1;
         self.result.index = index;
         self.result.time_s =
@@ -386,5 +451,80 @@ mod tests {
             analyzer.finish(|_| frames += 1);
         });
         assert!(frames > 0);
+    }
+
+    /// A seeded mix of a tone and noise, 2 s at 48 kHz, for the shares tests.
+    fn shares_signal() -> Vec<f32> {
+        const SEED: u64 = 0x5EED_0A11_2026;
+        let mut state = SEED;
+        (0..96_000)
+            .map(|i| {
+                state ^= state << 13;
+                state ^= state >> 7;
+                state ^= state << 17;
+                let noise = (state >> 40) as f32 / (1u64 << 24) as f32 - 0.5;
+                let tone =
+                    (0.3 * (std::f64::consts::TAU * 220.0 * i as f64 / 48_000.0).sin()) as f32;
+                tone + if i > 48_000 { 0.3 * noise } else { 0.0 }
+            })
+            .collect()
+    }
+
+    #[test]
+    fn shares_equal_the_trackers_and_ignore_block_size() {
+        let palette = Palette::default_palette();
+        let shares = SharesSettings::default();
+        let settings = AnalysisSettings::for_sample_rate(48_000.0).expect("valid");
+        let mut analyzer = Analyzer::with_palette(settings, &palette, shares).expect("palette");
+        let x = shares_signal();
+        // The tracker frames and transforms on its own: an independent path to the same numbers.
+        let mut tracker =
+            crate::shares::SharesTracker::new(&palette, shares, 48_000.0).expect("palette");
+        let mut expected = Vec::new();
+        tracker.process(&x, |u| expected.push((u.raw, u.smoothed)));
+        tracker.finish(|u| expected.push((u.raw, u.smoothed)));
+        assert!(expected.len() > 10, "{} columns", expected.len());
+        let mut reference = Vec::new();
+        for block in [x.len(), 1, 333, 4096] {
+            let mut got = Vec::new();
+            for chunk in x.chunks(block) {
+                analyzer.process(chunk, None, |f| {
+                    if f.shares.updated {
+                        got.push((f.shares.raw, f.shares.smoothed));
+                    }
+                });
+            }
+            analyzer.finish(|f| {
+                if f.shares.updated {
+                    got.push((f.shares.raw, f.shares.smoothed));
+                }
+            });
+            analyzer.reset();
+            assert_eq!(got, expected, "block {block}");
+            if reference.is_empty() {
+                reference = got;
+            }
+        }
+        let (raw, _) = reference.last().expect("columns");
+        assert!(raw.signal && raw.families == palette.families().len());
+        let total: f32 = raw.share[..raw.families].iter().sum::<f32>() + raw.unexplained;
+        assert!((total - 1.0).abs() < 1e-4, "shares sum to {total}");
+    }
+
+    #[test]
+    fn processing_with_a_palette_does_not_allocate() {
+        let palette = Palette::default_palette();
+        let settings = AnalysisSettings::for_sample_rate(48_000.0).expect("valid");
+        let mut analyzer =
+            Analyzer::with_palette(settings, &palette, SharesSettings::default()).expect("palette");
+        let x = shares_signal();
+        let mut updates = 0;
+        assert_no_alloc::assert_no_alloc(|| {
+            for block in x.chunks(333) {
+                analyzer.process(block, None, |f| updates += usize::from(f.shares.updated));
+            }
+            analyzer.finish(|f| updates += usize::from(f.shares.updated));
+        });
+        assert!(updates > 10, "{updates} updates");
     }
 }

@@ -30,7 +30,7 @@ pub mod spectrum;
 pub mod style;
 pub mod timbre;
 
-pub use analyzer::{AnalysisSettings, Analyzer, FrameResult, SettingsError};
+pub use analyzer::{AnalysisSettings, Analyzer, FrameResult, FrameShares, SettingsError};
 pub use frames::{FrameConfig, Framer, FramingError};
 pub use level::{Level, SILENCE_FLOOR_DB};
 pub use timbre::{Descriptors, Timbre, TimbreOptions};

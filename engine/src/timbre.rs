@@ -464,6 +464,13 @@ impl Timbre {
         self.frames += 1;
     }
 
+    /// The one-sided power spectrum of the frame [`Timbre::describe`] last measured (`|X|²` of
+    /// the Hann-windowed frame, `frame_len / 2 + 1` bins, see [`crate::spectrum`]); zeros
+    /// before the first frame. The shares estimator reads it so the FFT runs once per frame.
+    pub fn power(&self) -> &[f32] {
+        self.spectrum.power()
+    }
+
     /// Describes a whole clip offline, exactly as librosa 0.11.0 does (each field's function is
     /// named on [`Descriptors`]): librosa's centred framing (`1 + len / hop` frames, frame `k`
     /// centred on sample `k·hop`, i.e. at `k·hop / sr` seconds) and its whole-clip `top_db`
