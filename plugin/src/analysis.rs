@@ -25,6 +25,18 @@ pub const DUMP_EVERY_S: f64 = 1.0;
 /// [`DUMP_EVERY_S`] seconds and when the analysis stops (for test hosts and screenshots; read in
 /// `activate()`).
 pub const SNAPSHOT_DIR_ENV: &str = "WEFT_SNAPSHOT_DIR";
+/// Environment variable for tests of a starved analysis: a pause, µs, the analysis thread takes
+/// after every chunk it drains (read in `activate()`; absent or unreadable: no pause). It slows
+/// only the analysis thread, never the audio thread.
+pub const SLOW_ANALYSIS_ENV: &str = "WEFT_TEST_ANALYSIS_DELAY_US";
+/// The longest pause [`SLOW_ANALYSIS_ENV`] may ask for, µs.
+pub const MAX_SLOW_ANALYSIS_US: u64 = 1_000_000;
+
+/// The pause [`SLOW_ANALYSIS_ENV`] asks for.
+pub fn slow_analysis_from_env() -> Option<Duration> {
+    let us: u64 = std::env::var(SLOW_ANALYSIS_ENV).ok()?.trim().parse().ok()?;
+    (us > 0).then(|| Duration::from_micros(us.min(MAX_SLOW_ANALYSIS_US)))
+}
 
 /// What a running analysis needs, handed over at activation.
 pub struct AnalysisJob {
@@ -42,6 +54,8 @@ pub struct AnalysisJob {
     pub response_ms: Arc<nice_plug::prelude::FloatParam>,
     /// Where to write the final snapshot, if anywhere.
     pub dump_to: Option<PathBuf>,
+    /// A pause after every drained chunk (tests of a starved analysis, [`SLOW_ANALYSIS_ENV`]).
+    pub slow: Option<Duration>,
 }
 
 /// A running analysis thread.
@@ -231,6 +245,9 @@ fn run(mut job: AnalysisJob, stop: &AtomicBool) -> triple_buffer::Input<Snapshot
             job.analyzer
                 .process(&mid[..n], Some(&side[..n]), |f| state.frame(f, response_ms));
             moved += n;
+            if let Some(pause) = job.slow {
+                std::thread::sleep(pause);
+            }
         }
         if moved > 0 || stopping {
             state.snapshot.samples_analysed = job.analyzer.samples_in();

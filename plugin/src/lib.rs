@@ -175,6 +175,7 @@ impl Plugin for Weft {
             offline: self.offline,
             response_ms: self.params.response_ms.clone(),
             dump_to,
+            slow: analysis::slow_analysis_from_env(),
         };
         match AnalysisThread::start(job) {
             Ok(thread) => {
