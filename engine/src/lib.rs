@@ -14,7 +14,8 @@
 //! - [`scene`]: seeded composed scenes rendered from a SoundFont, with exact ground truth;
 //! - [`analyzer`]: the [`Analyzer`] that feeds frames to every measurement;
 //! - [`style`]: style models (forest, linear SVM, logistic regression), closeness and reasons;
-//! - [`evaluation`]: cross-validation folds, balanced error, confusion, calibration tables.
+//! - [`evaluation`]: cross-validation folds, balanced error, confusion, calibration tables;
+//! - [`windows`]: window statistics of frames, the features style models read, live and offline.
 
 #![forbid(unsafe_code)]
 
@@ -29,6 +30,7 @@ pub mod shares;
 pub mod spectrum;
 pub mod style;
 pub mod timbre;
+pub mod windows;
 
 pub use analyzer::{AnalysisSettings, Analyzer, FrameResult, FrameShares, SettingsError};
 pub use frames::{FrameConfig, Framer, FramingError};
