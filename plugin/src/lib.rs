@@ -10,29 +10,35 @@
 #![deny(unsafe_code)]
 
 pub mod analysis;
+pub mod controls;
 pub mod panel;
 pub mod ring;
+pub mod setlog;
 pub mod snapshot;
 
 use analysis::{AnalysisJob, AnalysisThread, SNAPSHOT_DIR_ENV};
+use controls::{Controls, PanelSettings};
 use nice_plug::prelude::*;
 use nice_plug_egui::EguiEditorState;
 use ring::AudioSide;
+use snapshot::MixHistory;
 pub use snapshot::Snapshot;
 use std::num::NonZeroU32;
-use std::sync::Arc;
-use weft_engine::{AnalysisSettings, Analyzer};
+use std::sync::{Arc, RwLock};
+use weft_engine::AnalysisSettings;
 
 /// The panel's size when first opened, logical pixels.
-pub const PANEL_SIZE: (u32, u32) = (720, 480);
+pub const PANEL_SIZE: (u32, u32) = (1000, 700);
 
 /// Weft's parameters and persisted settings.
 #[derive(Params)]
 pub struct WeftParams {
-    /// How fast the smoothed readings follow the music, ms (the level meter now; the mix view
-    /// later).
+    /// How fast the smoothed readings follow the music, ms (level, timbre and the mix).
     #[id = "response_ms"]
     pub response_ms: Arc<FloatParam>,
+    /// The panel's files, set-log folder, history span and hold, saved with the session.
+    #[persist = "panel"]
+    pub panel: Arc<RwLock<PanelSettings>>,
 }
 
 impl Default for WeftParams {
@@ -51,6 +57,7 @@ impl Default for WeftParams {
                 .with_unit(" ms")
                 .with_step_size(1.0),
             ),
+            panel: Arc::new(RwLock::new(PanelSettings::from_env())),
         }
     }
 }
@@ -68,13 +75,22 @@ pub struct Weft {
     publish: Option<triple_buffer::Input<Snapshot>>,
     /// The snapshot reader, handed to the panel when it is created.
     panel_feed: Option<triple_buffer::Output<Snapshot>>,
+    /// The mix history publisher while no analysis thread holds it.
+    history_publish: Option<triple_buffer::Input<MixHistory>>,
+    /// The mix history reader, handed to the panel.
+    history_feed: Option<triple_buffer::Output<MixHistory>>,
+    /// What the panel asks of the analysis.
+    controls: Arc<Controls>,
 }
 
 impl Default for Weft {
     fn default() -> Self {
         let (publish, panel_feed) = triple_buffer::triple_buffer(&Snapshot::default());
+        let (history_publish, history_feed) = triple_buffer::triple_buffer(&MixHistory::default());
+        let params = Arc::new(WeftParams::default());
+        let controls = Arc::new(Controls::new(params.panel.clone()));
         Self {
-            params: Arc::new(WeftParams::default()),
+            params,
             editor_state: EguiEditorState::from_size(
                 nice_plug::editor::dpi::LogicalSize::new(PANEL_SIZE.0, PANEL_SIZE.1),
                 1.0,
@@ -84,6 +100,9 @@ impl Default for Weft {
             thread: None,
             publish: Some(publish),
             panel_feed: Some(panel_feed),
+            history_publish: Some(history_publish),
+            history_feed: Some(history_feed),
+            controls,
         }
     }
 }
@@ -93,7 +112,10 @@ impl Weft {
         self.audio = None;
         if let Some(thread) = self.thread.take() {
             match thread.stop() {
-                Some(publish) => self.publish = Some(publish),
+                Some(p) => {
+                    self.publish = Some(p.snapshot);
+                    self.history_publish = Some(p.history);
+                }
                 None => nice_error!("the analysis thread stopped abnormally"),
             }
         }
@@ -136,7 +158,14 @@ impl Plugin for Weft {
 
     fn editor(&mut self, _async_executor: AsyncExecutor<Self>) -> Option<Self::Editor> {
         let feed = self.panel_feed.take()?;
-        panel::editor(self.editor_state.clone(), self.params.clone(), feed)
+        let history = self.history_feed.take()?;
+        panel::editor(
+            self.editor_state.clone(),
+            self.params.clone(),
+            self.controls.clone(),
+            feed,
+            history,
+        )
     }
 
     fn activate(
@@ -151,8 +180,9 @@ impl Plugin for Weft {
             nice_error!("unsupported sample rate {} Hz", buffer_config.sample_rate);
             return false;
         };
-        let Some(publish) = self.publish.take() else {
-            nice_error!("the snapshot publisher was lost");
+        let (Some(publish), Some(history)) = (self.publish.take(), self.history_publish.take())
+        else {
+            nice_error!("the snapshot publishers were lost");
             return false;
         };
         let channels = audio_io_layout
@@ -169,13 +199,16 @@ impl Plugin for Weft {
         });
         let job = AnalysisJob {
             input,
-            analyzer: Analyzer::new(settings),
+            settings,
             publish,
+            history,
+            controls: self.controls.clone(),
             channels,
             offline: self.offline,
             response_ms: self.params.response_ms.clone(),
             dump_to,
             slow: analysis::slow_analysis_from_env(),
+            prefill_history: std::env::var(analysis::PREFILL_HISTORY_ENV).is_ok_and(|v| v == "1"),
         };
         match AnalysisThread::start(job) {
             Ok(thread) => {
@@ -188,6 +221,8 @@ impl Plugin for Weft {
                 nice_error!("could not start the analysis thread: {err}");
                 let (publish, _) = triple_buffer::triple_buffer(&Snapshot::default());
                 self.publish = Some(publish);
+                let (history, _) = triple_buffer::triple_buffer(&MixHistory::default());
+                self.history_publish = Some(history);
                 false
             }
         }

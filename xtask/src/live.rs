@@ -165,9 +165,13 @@ pub fn start_standalone(
     binary: &Path,
     snapshot_dir: Option<&Path>,
     display: Option<&str>,
+    env: &[(&str, String)],
 ) -> Result<Guarded> {
     let mut cmd = Command::new(binary);
     cmd.args(["--backend", "jack"]);
+    for (name, value) in env {
+        cmd.env(name, value);
+    }
     if let Some(dir) = snapshot_dir {
         std::fs::create_dir_all(dir)?;
         cmd.env("WEFT_SNAPSHOT_DIR", dir);
@@ -214,7 +218,7 @@ pub fn run() -> Result<()> {
     );
     signal::write_demo_wav(Path::new(DEMO_WAV), 120.0)?;
     let _jackd = start_dummy_jack(48_000)?;
-    let mut app = start_standalone(&binary, None, None)?;
+    let mut app = start_standalone(&binary, None, None, &[])?;
     let inputs = weft_inputs(Duration::from_secs(30))?;
     while app.alive() {
         let mut player = play_into(Path::new(DEMO_WAV), &inputs)?;

@@ -1,9 +1,12 @@
-//! `cargo xtask shot`: the panel rendered under Xvfb, fed with the test signal, saved as a PNG.
+//! `cargo xtask shot`: every view of the panel rendered under Xvfb, fed with a Lantern Hall demo
+//! piece (or the test signal), saved as PNGs in `shots/`.
 //!
-//! The standalone program runs on a dummy JACK server with the demo signal playing into it. After
-//! a few seconds the screen is captured, and the snapshot the analysis thread dumps every second is
-//! checked along with the picture: the panel must have analysed the signal, dropped nothing, and
-//! the picture must not be blank.
+//! The standalone program runs on a dummy JACK server with the audio playing into it, once per
+//! view. After a few seconds the screen is captured, and what the analysis thread and the panel
+//! dump every second is checked along with the picture: the panel must have analysed the audio,
+//! dropped nothing, shown family shares (and the style estimate when a model is given), and the
+//! picture must not be blank. The last view starts with ten minutes of invented history and
+//! reports the panel's frame time with the history full.
 
 use crate::live::{Guarded, play_into, start_dummy_jack, start_standalone, weft_inputs};
 use crate::{build_standalone, run_checked, signal};
@@ -13,40 +16,53 @@ use std::process::{Command, Stdio};
 use std::thread::sleep;
 use std::time::Duration;
 
-/// What `shot` writes and how long it lets the panel run.
+/// What `shot` plays, writes and how long it lets the panel run.
 #[derive(Debug, Clone)]
 pub struct Options {
-    /// The PNG to write.
-    pub out: PathBuf,
-    /// Seconds of signal before the capture.
+    /// The folder the PNGs go to.
+    pub out_dir: PathBuf,
+    /// Seconds of audio before each capture.
     pub seconds: f64,
+    /// The audio to play (48 kHz WAV); `None`: the generated test signal.
+    pub audio: Option<PathBuf>,
+    /// A style model for the panel to load.
+    pub model: Option<PathBuf>,
 }
 
 impl Default for Options {
     fn default() -> Self {
         Self {
-            out: PathBuf::from("shots/panel.png"),
-            seconds: 6.0,
+            out_dir: PathBuf::from("shots"),
+            seconds: 7.0,
+            audio: None,
+            model: None,
         }
     }
 }
 
 impl Options {
-    /// Parses `--out FILE` and `--seconds S`.
+    /// Parses `--out DIR`, `--seconds S`, `--audio WAV`, `--model FILE`.
     pub fn parse(args: &[String]) -> Result<Self> {
         let mut options = Self::default();
         let mut it = args.iter();
         while let Some(arg) = it.next() {
+            let mut value = |what: &str| -> Result<String> {
+                it.next()
+                    .cloned()
+                    .with_context(|| format!("{arg} needs {what}"))
+            };
             match arg.as_str() {
-                "--out" => options.out = it.next().context("--out needs a file name")?.into(),
+                "--out" => options.out_dir = value("a folder")?.into(),
                 "--seconds" => {
-                    options.seconds = it
-                        .next()
-                        .context("--seconds needs a number")?
+                    options.seconds = value("a number")?
                         .parse()
                         .context("--seconds needs a number")?;
                 }
-                other => bail!("shot: unknown option '{other}' (use --out FILE, --seconds S)"),
+                "--audio" => options.audio = Some(value("a WAV file")?.into()),
+                "--model" => options.model = Some(value("a style model file")?.into()),
+                other => bail!(
+                    "shot: unknown option '{other}' (use --out DIR, --seconds S, --audio WAV, --model FILE)"
+                ),
             }
         }
         Ok(options)
@@ -54,15 +70,58 @@ impl Options {
 }
 
 const DISPLAY: &str = ":97";
-const SCREEN: &str = "1024x640x24";
+const SCREEN: &str = "1280x800x24";
 
-/// Renders the panel and checks what it showed.
+/// One view to capture.
+struct View {
+    /// What the picture shows, for the log.
+    what: &'static str,
+    /// File name in the output folder.
+    file: &'static str,
+    /// `WEFT_PANEL_VIEW` for the panel (see `weft_plugin::panel::PANEL_VIEW_ENV`).
+    panel_view: &'static str,
+    /// Start with ten minutes of invented history and report the frame time.
+    full_history: bool,
+}
+
+const VIEWS: [View; 4] = [
+    View {
+        what: "overview: mix by section, style, level and timbre, history by section",
+        file: "panel.png",
+        panel_view: "",
+        full_history: false,
+    },
+    View {
+        what: "every section open to its families, history stacked by family",
+        file: "panel-families.png",
+        panel_view: "families,family-history",
+        full_history: false,
+    },
+    View {
+        what: "files and set log open, a set log recording",
+        file: "panel-setup.png",
+        panel_view: "setup,record",
+        full_history: false,
+    },
+    View {
+        what: "ten minutes of history (frame-time measurement)",
+        file: "panel-full-history.png",
+        panel_view: "",
+        full_history: true,
+    },
+];
+
+/// Renders every view and checks what each showed.
 pub fn run(options: &Options) -> Result<()> {
     let binary = build_standalone(false)?;
-    signal::write_demo_wav(Path::new(crate::live::DEMO_WAV), 30.0)?;
-    let snapshot_dir = PathBuf::from("target/shot-snapshot");
-    let _ = std::fs::remove_dir_all(&snapshot_dir);
-
+    let audio = match &options.audio {
+        Some(path) => path.clone(),
+        None => {
+            signal::write_demo_wav(Path::new(crate::live::DEMO_WAV), 60.0)?;
+            PathBuf::from(crate::live::DEMO_WAV)
+        }
+    };
+    std::fs::create_dir_all(&options.out_dir)?;
     let _xvfb = Guarded::spawn(
         "Xvfb",
         Command::new("Xvfb")
@@ -72,32 +131,48 @@ pub fn run(options: &Options) -> Result<()> {
     )?;
     sleep(Duration::from_millis(800));
     let _jackd = start_dummy_jack(48_000)?;
-    let mut app = start_standalone(&binary, Some(&snapshot_dir), Some(DISPLAY))?;
-    let inputs = weft_inputs(Duration::from_secs(60))?;
-    let _player = play_into(Path::new(crate::live::DEMO_WAV), &inputs)?;
-    sleep(Duration::from_secs_f64(options.seconds));
-    if let Some(dir) = options.out.parent() {
-        std::fs::create_dir_all(dir)?;
+    let log_dir = PathBuf::from("target/shot-set-logs");
+    let _ = std::fs::remove_dir_all(&log_dir);
+    for (i, view) in VIEWS.iter().enumerate() {
+        let snapshot_dir = PathBuf::from(format!("target/shot-snapshot-{i}"));
+        let _ = std::fs::remove_dir_all(&snapshot_dir);
+        let mut env = vec![
+            ("WEFT_PANEL_VIEW", view.panel_view.to_owned()),
+            ("WEFT_SET_LOG_DIR", log_dir.display().to_string()),
+        ];
+        if let Some(model) = &options.model {
+            env.push(("WEFT_STYLE_MODEL", model.display().to_string()));
+        }
+        if view.full_history {
+            env.push(("WEFT_TEST_PREFILL_HISTORY", "1".to_owned()));
+        }
+        let mut app = start_standalone(&binary, Some(&snapshot_dir), Some(DISPLAY), &env)?;
+        let inputs = weft_inputs(Duration::from_secs(60))?;
+        let mut player = play_into(&audio, &inputs)?;
+        sleep(Duration::from_secs_f64(options.seconds));
+        let out = options.out_dir.join(view.file);
+        run_checked(
+            Command::new("import")
+                .env("DISPLAY", DISPLAY)
+                .args(["-window", "root", "-crop"])
+                .arg(format!("{}x{}+0+0", PANEL_SIZE.0, PANEL_SIZE.1))
+                .arg(&out),
+        )?;
+        // The dumps are rewritten every second: wait for current ones, then stop.
+        sleep(Duration::from_millis(1200));
+        app.stop(Duration::from_secs(1));
+        player.stop(Duration::from_secs(1));
+        check_picture(&out)?;
+        check_snapshot(&snapshot_dir, options.model.is_some())?;
+        let timing = check_panel(&snapshot_dir, view)?;
+        println!("shot: wrote {} ({}){timing}", out.display(), view.what);
     }
-    run_checked(
-        Command::new("import")
-            .env("DISPLAY", DISPLAY)
-            .args(["-window", "root", "-crop"])
-            .arg(format!("{}x{}+0+0", PANEL_SIZE.0, PANEL_SIZE.1))
-            .arg(&options.out),
-    )?;
-    // The panel keeps its window open through SIGINT; its snapshot dump is rewritten every second,
-    // so wait one more second for a current one, then stop it.
-    sleep(Duration::from_millis(1200));
-    app.stop(Duration::from_secs(1));
-    check_picture(&options.out)?;
-    check_snapshot(&snapshot_dir)?;
-    println!("shot: wrote {}", options.out.display());
+    check_set_log(&log_dir)?;
     Ok(())
 }
 
 /// The panel's logical size (the standalone opens it at scale 1; `weft_plugin::PANEL_SIZE`).
-const PANEL_SIZE: (u32, u32) = (720, 480);
+const PANEL_SIZE: (u32, u32) = (1000, 700);
 
 /// Fails when the picture is one flat colour (nothing was drawn).
 fn check_picture(png: &Path) -> Result<()> {
@@ -117,40 +192,96 @@ fn check_picture(png: &Path) -> Result<()> {
             png.display()
         );
     }
-    println!("shot: picture has detail (pixel standard deviation {sd:.3})");
     Ok(())
 }
 
-/// Fails unless the panel's analysis heard the signal and dropped nothing.
-fn check_snapshot(dir: &Path) -> Result<()> {
+fn read_json(path: &Path) -> Result<serde_json::Value> {
+    let text =
+        std::fs::read_to_string(path).with_context(|| format!("cannot read {}", path.display()))?;
+    serde_json::from_str(&text).with_context(|| format!("{} is not JSON", path.display()))
+}
+
+/// Fails unless the analysis heard the audio, dropped nothing, shared it out among families,
+/// and (with a model) estimated the style.
+fn check_snapshot(dir: &Path, with_model: bool) -> Result<()> {
     let entry = std::fs::read_dir(dir)
         .with_context(|| format!("no snapshot folder {}", dir.display()))?
         .filter_map(Result::ok)
-        .find(|e| e.file_name().to_string_lossy().ends_with(".json"))
+        .find(|e| {
+            e.file_name()
+                .to_string_lossy()
+                .starts_with("weft-snapshot-")
+        })
         .context("the standalone wrote no snapshot")?;
-    let text = std::fs::read_to_string(entry.path())?;
-    let json: serde_json::Value = serde_json::from_str(&text)
-        .with_context(|| format!("{} is not JSON", entry.path().display()))?;
-    let field = |name: &str| -> Result<f64> {
-        json[name]
-            .as_f64()
+    let json = read_json(&entry.path())?;
+    let number = |v: &serde_json::Value, name: &str| -> Result<f64> {
+        v.as_f64()
             .with_context(|| format!("snapshot field {name} is missing or not a number"))
     };
-    let analysed = field("samples_analysed")?;
-    let dropped = field("samples_dropped")?;
-    let peak_hold = field("peak_hold_db")?;
-    println!(
-        "shot: the panel analysed {analysed} samples, dropped {dropped}, peak hold {peak_hold:.1} dBFS"
-    );
+    let analysed = number(&json["samples_analysed"], "samples_analysed")?;
+    let dropped = number(&json["samples_dropped"], "samples_dropped")?;
+    let updates = number(&json["mix"]["updates"], "mix.updates")?;
     if analysed < 48_000.0 {
-        bail!("the panel analysed less than a second of the test signal");
+        bail!("the panel analysed less than a second of audio");
     }
     if dropped > 0.0 {
         bail!("the panel dropped {dropped} samples at real-time pace");
     }
-    // The demo signal peaks between −20 and about −10 dBFS.
-    if !(-21.0..=-8.0).contains(&peak_hold) {
-        bail!("the panel's peak hold {peak_hold} dBFS does not match the test signal");
+    if updates < 10.0 || json["mix"]["signal"] != serde_json::Value::Bool(true) {
+        bail!("the panel showed no family shares ({updates} updates)");
     }
+    if with_model {
+        if let Some(problem) = json["style_problem"].as_str() {
+            bail!("the style model was refused: {problem}");
+        }
+        let windows = number(&json["style"]["windows"], "style.windows")?;
+        if windows < 1.0 {
+            bail!("the panel made no style estimate");
+        }
+    }
+    Ok(())
+}
+
+/// Reads the panel's own dump; for the full-history view, reports its frame time.
+fn check_panel(dir: &Path, view: &View) -> Result<String> {
+    let json = read_json(&dir.join("weft-panel.json"))?;
+    let frames = json["frames"].as_f64().unwrap_or(0.0);
+    if frames < 10.0 {
+        bail!("the panel drew only {frames} frames");
+    }
+    if view.panel_view.contains("record") && json["recording"] != serde_json::Value::Bool(true) {
+        bail!("the set log did not start");
+    }
+    if view.full_history {
+        let cells = json["history_cells"].as_f64().unwrap_or(0.0);
+        if cells < 1000.0 {
+            bail!("the history was not full ({cells} cells)");
+        }
+        return Ok(format!(
+            "; panel frame time with {cells} history cells: mean {:.2} ms, 95th percentile {:.2} ms, max {:.2} ms over {frames} frames",
+            json["mean_ms"].as_f64().unwrap_or(f64::NAN),
+            json["p95_ms"].as_f64().unwrap_or(f64::NAN),
+            json["max_ms"].as_f64().unwrap_or(f64::NAN),
+        ));
+    }
+    Ok(String::new())
+}
+
+/// The recording view's set log must hold rows.
+fn check_set_log(dir: &Path) -> Result<()> {
+    let log = std::fs::read_dir(dir)
+        .with_context(|| format!("no set log folder {}", dir.display()))?
+        .filter_map(Result::ok)
+        .find(|e| e.file_name().to_string_lossy().ends_with(".csv"))
+        .context("no set log was written")?;
+    let text = std::fs::read_to_string(log.path())?;
+    let rows = text.lines().count().saturating_sub(1);
+    if rows < 4 {
+        bail!(
+            "the set log {} holds only {rows} rows",
+            log.path().display()
+        );
+    }
+    println!("shot: set log {} holds {rows} rows", log.path().display());
     Ok(())
 }
