@@ -381,6 +381,18 @@ pub struct Snapshot {
     pub peak_hold_db: f32,
     /// Mean RMS level per history cell, dBFS, oldest first.
     pub level_history_db: Vec<f32>,
+    /// The live instrument mix: `updates`, `signal`, `shares` (family → 0–1), `unexplained`.
+    #[serde(default)]
+    pub mix: serde_json::Value,
+    /// The style estimate (`category`, `windows`, `closeness`, `reasons`), null without a model.
+    #[serde(default)]
+    pub style: serde_json::Value,
+    /// Why the requested style model is not in use, if it is not.
+    #[serde(default)]
+    pub style_problem: Option<String>,
+    /// Why the requested palette is not in use, if it is not.
+    #[serde(default)]
+    pub palette_problem: Option<String>,
 }
 
 /// Snapshot file names in use by active instances. Instances with equal settings write the same
