@@ -3,17 +3,24 @@
 //! ([`run_batch`]).
 
 use crate::decode::{Source, SourceInfo};
-use crate::plot::{self, PlotFormat, PlotPanel};
+use crate::plot::{self, PlotBy, PlotFormat, PlotPanel};
 use crate::report::{AtomicFile, RowFormat, RowWriter};
 use crate::resample::StreamResampler;
-use crate::timeline::{FrameRow, Totals, WindowRow, WindowSummarizer};
-use anyhow::{Context, Result, bail};
+use crate::timeline::{
+    ClosenessAssigner, FrameOut, FrameRow, ShareNames, Totals, WindowRow, WindowSummarizer,
+};
+use anyhow::{Context, Result, anyhow, bail};
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use rayon::prelude::*;
 use std::io::Write;
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::time::Instant;
+use weft_engine::palette::Palette;
+use weft_engine::shares::SharesSettings;
+use weft_engine::style::{Estimate, EstimateScratch, Reason, StyleModel};
+use weft_engine::windows::{WindowSpec, Windower};
 use weft_engine::{AnalysisSettings, Analyzer, FrameConfig, FrameResult};
 
 /// Extensions picked up when a folder is searched (files named explicitly are always tried).
@@ -33,6 +40,150 @@ pub struct AnalyzeOptions {
     pub resample_hz: Option<u32>,
     /// Per-frame rows instead of per-window rows, and how.
     pub frames: FramesMode,
+    /// The palette for family shares; `None`: no shares.
+    pub palette: Option<Arc<Palette>>,
+    /// Also collect style windows (the engine's [`Windower`], needs a palette) of this spec.
+    pub style_windows: Option<WindowSpec>,
+    /// Estimate every style window with this model (needs `style_windows` of the model's spec):
+    /// closeness per style window, and per timeline row.
+    pub style: Option<Arc<StyleTarget>>,
+}
+
+impl AnalyzeOptions {
+    /// What style training and estimation need: the built-in framing at the file's rate, the
+    /// palette's shares and style windows of `spec`, no rows.
+    pub fn for_style(palette: Arc<Palette>, spec: WindowSpec) -> Self {
+        Self {
+            window_s: spec.window_s,
+            framing: None,
+            resample_hz: None,
+            frames: FramesMode::Off,
+            palette: Some(palette),
+            style_windows: Some(spec),
+            style: None,
+        }
+    }
+}
+
+/// Reads a palette file, or the built-in palette without one.
+pub fn load_palette(path: Option<&Path>) -> Result<Arc<Palette>> {
+    Ok(Arc::new(match path {
+        Some(p) => {
+            let bytes = std::fs::read(p)
+                .with_context(|| format!("palette {}: cannot read the file", p.display()))?;
+            Palette::from_bytes(&bytes)
+                .with_context(|| format!("palette {}: not a usable palette", p.display()))?
+        }
+        None => Palette::default_palette(),
+    }))
+}
+
+/// A style model ready to estimate windows, and the category its closeness is for.
+#[derive(Debug)]
+pub struct StyleTarget {
+    /// The model file.
+    pub path: PathBuf,
+    /// The model.
+    pub model: StyleModel,
+    /// Index of the category in the model's classes.
+    pub category: usize,
+    /// The window spec the model reads (the engine's default, 3 s every 1 s).
+    pub spec: WindowSpec,
+}
+
+impl StyleTarget {
+    /// Loads `path` for windows of `palette` (refusing a model trained on another schema or
+    /// palette) and picks the category: `category` by name, or else the model's first class
+    /// that is not a catch-all (named "rest", "other", or starting with "not " or "non-"),
+    /// or else its first class.
+    pub fn load(path: &Path, palette: &Palette, category: Option<&str>) -> Result<Self> {
+        let spec = WindowSpec::default();
+        let schema = weft_engine::windows::schema(spec, palette)
+            .context("the palette's family names do not make a window schema")?;
+        let model = StyleModel::load_for_schema(path, &schema)
+            .with_context(|| format!("style model {} cannot be used", path.display()))?;
+        let category = match category {
+            Some(name) => model.class_index(name).ok_or_else(|| {
+                anyhow!(
+                    "style model {} has no category {name:?} (it knows {})",
+                    path.display(),
+                    model.classes().join(", ")
+                )
+            })?,
+            None => default_category(model.classes()),
+        };
+        Ok(Self {
+            path: path.to_owned(),
+            model,
+            category,
+            spec,
+        })
+    }
+
+    /// The category's name.
+    pub fn category_name(&self) -> &str {
+        self.model
+            .classes()
+            .get(self.category)
+            .map_or("?", String::as_str)
+    }
+}
+
+/// The first class that is not a catch-all ("rest", "other", "not …", "non-…"), else the first.
+pub fn default_category(classes: &[String]) -> usize {
+    let catch_all = |c: &str| {
+        let c = c.to_lowercase();
+        c == "rest"
+            || c == "other"
+            || c == "others"
+            || c.starts_with("not ")
+            || c.starts_with("non-")
+    };
+    classes.iter().position(|c| !catch_all(c)).unwrap_or(0)
+}
+
+/// One style window's estimate.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StyleEstimate {
+    /// Centre time of the window's first frame, seconds.
+    pub start_s: f64,
+    /// Centre time of its last frame, seconds.
+    pub end_s: f64,
+    /// Closeness to the category, 0–1.
+    pub closeness: f64,
+    /// The features that move the closeness most (largest push first).
+    pub reasons: Vec<Reason>,
+}
+
+impl StyleEstimate {
+    /// Centre of the window, seconds.
+    pub fn centre_s(&self) -> f64 {
+        0.5 * (self.start_s + self.end_s)
+    }
+}
+
+/// A file's closeness in brief.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct ClosenessSummary {
+    /// Mean closeness of the style windows, 0–1.
+    pub mean: f64,
+    /// Fraction of the style windows with closeness above 0.5: the share of the time the music
+    /// sits closer to the category than not (windows start every second, so each stands for
+    /// one second of the file).
+    pub above_half: f64,
+    /// Style windows estimated.
+    pub windows: usize,
+}
+
+/// One style window of a file: the engine's window features (see `weft_engine::windows`).
+#[derive(Debug, Clone, PartialEq)]
+pub struct StyleWindow {
+    /// Centre time of the window's first frame, seconds.
+    pub start_s: f64,
+    /// Centre time of its last frame, seconds.
+    pub end_s: f64,
+    /// The features, in the schema's order.
+    pub features: Vec<f64>,
 }
 
 /// What one file's analysis produced.
@@ -52,12 +203,38 @@ pub struct FileReport {
     pub duration_s: f64,
     /// The timeline.
     pub windows: Vec<WindowRow>,
+    /// Style windows (empty unless asked for).
+    pub style_windows: Vec<StyleWindow>,
+    /// The style model's estimate of every style window (empty without a style model).
+    pub style_estimates: Vec<StyleEstimate>,
     /// Whole-length figures.
     pub totals: Totals,
     /// The rows file written, if any.
     pub rows_file: Option<PathBuf>,
     /// The plot written for this file, if any.
     pub plot_file: Option<PathBuf>,
+}
+
+impl FileReport {
+    /// Mean closeness and time above 50 %, with a style model.
+    pub fn closeness_summary(&self) -> Option<ClosenessSummary> {
+        let n = self.style_estimates.len();
+        (n > 0).then(|| ClosenessSummary {
+            mean: self
+                .style_estimates
+                .iter()
+                .map(|e| e.closeness)
+                .sum::<f64>()
+                / n as f64,
+            above_half: self
+                .style_estimates
+                .iter()
+                .filter(|e| e.closeness > 0.5)
+                .count() as f64
+                / n as f64,
+            windows: n,
+        })
+    }
 }
 
 /// How `--frames` computes its frames.
@@ -82,24 +259,173 @@ pub const MAX_CLIP_FRAMES: usize = 1 << 26;
 struct Pipeline<'w, W: Write> {
     analyzer: Analyzer,
     summarizer: WindowSummarizer,
-    windows: Vec<WindowRow>,
-    frames_out: bool,
-    rows: Option<&'w mut RowWriter<W>>,
-    error: Option<anyhow::Error>,
+    style: Option<StyleState>,
+    out: Outputs<'w, W>,
     /// The whole clip, for [`FramesMode::WholeClip`].
     clip: Option<(Vec<f32>, Vec<f32>)>,
+}
+
+/// Style windows, and their estimates when a model is given.
+struct StyleState {
+    windower: Windower,
+    windows: Vec<StyleWindow>,
+    scoring: Option<Scoring>,
+}
+
+struct Scoring {
+    target: Arc<StyleTarget>,
+    scratch: EstimateScratch,
+    estimate: Estimate,
+    estimates: Vec<StyleEstimate>,
+}
+
+impl StyleState {
+    fn push<W: Write>(&mut self, f: &FrameResult, out: &mut Outputs<'_, W>) {
+        if let Some(w) = self.windower.push(f) {
+            let w = StyleWindow {
+                start_s: w.start_s,
+                end_s: w.end_s,
+                features: w.features.to_vec(),
+            };
+            self.add(w, out);
+        }
+    }
+
+    fn finish<W: Write>(&mut self, out: &mut Outputs<'_, W>) {
+        if let Some(w) = self.windower.finish() {
+            let w = StyleWindow {
+                start_s: w.start_s,
+                end_s: w.end_s,
+                features: w.features.to_vec(),
+            };
+            self.add(w, out);
+        }
+    }
+
+    fn add<W: Write>(&mut self, w: StyleWindow, out: &mut Outputs<'_, W>) {
+        if let Some(s) = &mut self.scoring {
+            let t = &s.target;
+            match t
+                .model
+                .estimate_into(&w.features, t.category, &mut s.scratch, &mut s.estimate)
+            {
+                Ok(()) => {
+                    let closeness = s.estimate.closeness()[t.category];
+                    let e = StyleEstimate {
+                        start_s: w.start_s,
+                        end_s: w.end_s,
+                        closeness,
+                        reasons: s.estimate.reasons().to_vec(),
+                    };
+                    out.estimate(e.centre_s(), closeness as f32);
+                    s.estimates.push(e);
+                }
+                Err(err) => out.fail(anyhow::Error::new(err).context(format!(
+                    "the style model cannot estimate the window at {:.1} s",
+                    w.start_s
+                ))),
+            }
+        }
+        self.windows.push(w);
+    }
+}
+
+/// Where rows go: the report's timeline, the rows file, and the closeness of each row.
+struct Outputs<'w, W: Write> {
+    windows: Vec<WindowRow>,
+    assigner: Option<ClosenessAssigner>,
+    frames_out: bool,
+    share_names: Option<Arc<ShareNames>>,
+    rows: Option<&'w mut RowWriter<W>>,
+    error: Option<anyhow::Error>,
+}
+
+impl<W: Write> Outputs<'_, W> {
+    fn fail(&mut self, err: anyhow::Error) {
+        if self.error.is_none() {
+            self.error = Some(err);
+        }
+    }
+
+    fn frame(&mut self, row: &FrameRow) {
+        if self.frames_out {
+            let out = FrameOut {
+                row,
+                names: self.share_names.as_ref(),
+            };
+            write_row(&mut self.rows, &mut self.error, &out);
+        }
+    }
+
+    /// A window from the summarizer (closeness still to be assigned, with a style model).
+    fn window(&mut self, w: &WindowRow) {
+        let Self {
+            windows,
+            assigner,
+            frames_out,
+            rows,
+            error,
+            ..
+        } = self;
+        let mut commit = |r: &WindowRow| {
+            windows.push(r.clone());
+            if !*frames_out {
+                write_row(rows, error, r);
+            }
+        };
+        match assigner {
+            Some(a) => a.push_row(w.clone(), &mut commit),
+            None => commit(w),
+        }
+    }
+
+    fn estimate(&mut self, centre_s: f64, closeness: f32) {
+        let Self {
+            windows,
+            assigner,
+            frames_out,
+            rows,
+            error,
+            ..
+        } = self;
+        if let Some(a) = assigner {
+            a.push_estimate(centre_s, closeness, &mut |r: &WindowRow| {
+                windows.push(r.clone());
+                if !*frames_out {
+                    write_row(rows, error, r);
+                }
+            });
+        }
+    }
+
+    fn finish(&mut self) {
+        let Self {
+            windows,
+            assigner,
+            frames_out,
+            rows,
+            error,
+            ..
+        } = self;
+        if let Some(a) = assigner {
+            a.finish(&mut |r: &WindowRow| {
+                windows.push(r.clone());
+                if !*frames_out {
+                    write_row(rows, error, r);
+                }
+            });
+        }
+    }
 }
 
 impl<W: Write> Pipeline<'_, W> {
     fn feed(&mut self, mid: &[f32], side: &[f32]) {
         if let Some((clip_mid, clip_side)) = &mut self.clip {
             if clip_mid.len() + mid.len() > MAX_CLIP_FRAMES {
-                if self.error.is_none() {
-                    self.error = Some(anyhow::anyhow!(
-                        "longer than the {MAX_CLIP_FRAMES} samples --frames holds in memory to apply \
-                         librosa's whole-clip floor (use --live for bounded memory)"
-                    ));
-                }
+                self.out.fail(anyhow::anyhow!(
+                    "longer than the {MAX_CLIP_FRAMES} samples --frames holds in memory to apply \
+                     librosa's whole-clip floor (use --live for bounded memory)"
+                ));
                 return;
             }
             clip_mid.extend_from_slice(mid);
@@ -109,15 +435,11 @@ impl<W: Write> Pipeline<'_, W> {
         let Self {
             analyzer,
             summarizer,
-            windows,
-            frames_out,
-            rows,
-            error,
+            style,
+            out,
             ..
         } = self;
-        analyzer.process(mid, Some(side), |f| {
-            on_frame(f, summarizer, windows, *frames_out, rows, error);
-        });
+        analyzer.process(mid, Some(side), |f| on_frame(f, summarizer, style, out));
     }
 
     /// Completes the clip; returns the whole-length figures and the samples analysed.
@@ -125,30 +447,27 @@ impl<W: Write> Pipeline<'_, W> {
         let Self {
             analyzer,
             summarizer,
-            windows,
-            frames_out,
-            rows,
-            error,
+            style,
+            out,
             clip,
         } = self;
         let total_samples = match clip.take() {
             Some((mid, side)) => {
                 for f in &analyzer.analyze_clip(&mid, Some(&side)) {
-                    on_frame(f, summarizer, windows, *frames_out, rows, error);
+                    on_frame(f, summarizer, style, out);
                 }
                 mid.len() as u64
             }
             None => {
-                analyzer.finish(|f| on_frame(f, summarizer, windows, *frames_out, rows, error));
+                analyzer.finish(|f| on_frame(f, summarizer, style, out));
                 analyzer.samples_in()
             }
         };
-        let totals = summarizer.finish(total_samples, &mut |w| {
-            windows.push(*w);
-            if !*frames_out {
-                write_row(rows, error, w);
-            }
-        });
+        if let Some(style) = style {
+            style.finish(out);
+        }
+        let totals = summarizer.finish(total_samples, &mut |w| out.window(w));
+        out.finish();
         (totals, total_samples)
     }
 }
@@ -156,21 +475,15 @@ impl<W: Write> Pipeline<'_, W> {
 fn on_frame<W: Write>(
     f: &FrameResult,
     summarizer: &mut WindowSummarizer,
-    windows: &mut Vec<WindowRow>,
-    frames_out: bool,
-    rows: &mut Option<&mut RowWriter<W>>,
-    error: &mut Option<anyhow::Error>,
+    style: &mut Option<StyleState>,
+    out: &mut Outputs<'_, W>,
 ) {
-    let row = FrameRow::from_engine(f);
-    if frames_out {
-        write_row(rows, error, &row);
+    if let Some(style) = style {
+        style.push(f, out);
     }
-    summarizer.push(f.index, row, &mut |w| {
-        windows.push(*w);
-        if !frames_out {
-            write_row(rows, error, w);
-        }
-    });
+    let row = FrameRow::from_engine(f, out.share_names.is_some());
+    out.frame(&row);
+    summarizer.push(f.index, row, &mut |w| out.window(w));
 }
 
 fn write_row<W: Write, T: serde::Serialize>(
@@ -228,13 +541,51 @@ pub fn analyse_file<W: Write>(
     } else {
         Some(StreamResampler::new(info.sample_rate_hz, rate_hz)?)
     };
+    let analyzer = match &options.palette {
+        Some(palette) => Analyzer::with_palette(settings, palette, SharesSettings::default())
+            .with_context(|| format!("the palette cannot be used at {rate_hz} Hz"))?,
+        None => Analyzer::new(settings),
+    };
+    let style_spec = options
+        .style
+        .as_ref()
+        .map(|t| t.spec)
+        .or(options.style_windows);
+    let style = match (style_spec, &options.palette) {
+        (Some(spec), Some(palette)) => Some(StyleState {
+            windower: Windower::new(spec, f64::from(rate_hz), framing, palette)?,
+            windows: Vec::new(),
+            scoring: options.style.as_ref().map(|t| Scoring {
+                target: Arc::clone(t),
+                scratch: EstimateScratch::new(&t.model),
+                estimate: Estimate::new(&t.model, weft_engine::style::DEFAULT_REASONS),
+                estimates: Vec::new(),
+            }),
+        }),
+        (Some(_), None) => bail!("style windows need a palette"),
+        (None, _) => None,
+    };
+    let share_names = options
+        .palette
+        .as_ref()
+        .map(|p| Arc::new(ShareNames::of(p)));
     let mut pipeline = Pipeline {
-        analyzer: Analyzer::new(settings),
-        summarizer: WindowSummarizer::new(window_len, framing.hop_len as u64, f64::from(rate_hz)),
-        windows: Vec::new(),
-        frames_out: options.frames != FramesMode::Off,
-        rows,
-        error: None,
+        analyzer,
+        summarizer: WindowSummarizer::new(
+            window_len,
+            framing.hop_len as u64,
+            f64::from(rate_hz),
+            share_names.clone(),
+        ),
+        out: Outputs {
+            windows: Vec::new(),
+            assigner: options.style.is_some().then(ClosenessAssigner::new),
+            frames_out: options.frames != FramesMode::Off,
+            share_names,
+            rows,
+            error: None,
+        },
+        style,
         clip: (options.frames == FramesMode::WholeClip).then(|| (Vec::new(), Vec::new())),
     };
     let source_rate = f64::from(info.sample_rate_hz);
@@ -244,18 +595,18 @@ pub fn analyse_file<W: Write>(
             Some(r) => r.process(mid, side, &mut |m, s| pipeline.feed(m, s))?,
             None => pipeline.feed(mid, side),
         }
-        if let Some(err) = pipeline.error.take() {
+        if let Some(err) = pipeline.out.error.take() {
             return Err(err);
         }
     }
     if let Some(r) = &mut resampler {
         r.finish(&mut |m, s| pipeline.feed(m, s))?;
     }
-    if let Some(err) = pipeline.error.take() {
+    if let Some(err) = pipeline.out.error.take() {
         return Err(err);
     }
     let (totals, total_samples) = pipeline.finish();
-    if let Some(err) = pipeline.error.take() {
+    if let Some(err) = pipeline.out.error.take() {
         return Err(err.context("cannot write the rows"));
     }
     let duration_s = total_samples as f64 / f64::from(rate_hz);
@@ -266,7 +617,14 @@ pub fn analyse_file<W: Write>(
         framing,
         window_s: options.window_s,
         duration_s,
-        windows: pipeline.windows,
+        windows: pipeline.out.windows,
+        style_estimates: pipeline
+            .style
+            .as_mut()
+            .and_then(|s| s.scoring.take())
+            .map(|s| s.estimates)
+            .unwrap_or_default(),
+        style_windows: pipeline.style.map(|s| s.windows).unwrap_or_default(),
         totals,
         rows_file: None,
         plot_file: None,
@@ -345,6 +703,8 @@ pub struct BatchOutput {
     pub row_format: RowFormat,
     /// One plot per file into `out_dir`.
     pub plots: Option<PlotFormat>,
+    /// How plots stack the shares.
+    pub plot_by: PlotBy,
     /// Hide the progress bar.
     pub quiet: bool,
     /// Worker threads.
@@ -451,7 +811,7 @@ pub fn install_panic_hook() {
 
 /// Runs one file's analysis so that a panic in a decoder (or in Weft) fails that file alone,
 /// with its message, and the batch goes on.
-fn analyse_guarded(run: impl FnOnce() -> Result<FileReport>) -> Result<FileReport> {
+pub fn analyse_guarded(run: impl FnOnce() -> Result<FileReport>) -> Result<FileReport> {
     IN_FILE.with(|f| f.set(true));
     let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(run));
     IN_FILE.with(|f| f.set(false));
@@ -487,13 +847,11 @@ fn analyse_to_outputs(
     report.rows_file = Some(dest);
     if let Some(format) = output.plots {
         let plot_dest = dir.join(format!("{name}.plot.{}", format.extension()));
+        let category = options.style.as_ref().map(|t| t.category_name());
         plot::write_plot(
             &plot_dest,
-            &[PlotPanel {
-                title: name.to_owned(),
-                duration_s: report.duration_s,
-                windows: &report.windows,
-            }],
+            &[PlotPanel::of(name.to_owned(), &report, category)],
+            output.plot_by,
         )
         .context("the timeline was written but the plot failed")?;
         report.plot_file = Some(plot_dest);

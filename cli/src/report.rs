@@ -4,7 +4,10 @@
 //! Rows are any `Serialize` value. JSON lines keep the row's nesting (`{"t": …, "level": {…}}`);
 //! CSV flattens it: a column is named by the field's path without its top-level group, joined
 //! with `_` (`level.rms_dbfs` → `rms_dbfs`, `descriptors.centroid_hz.mean` → `centroid_hz_mean`),
-//! arrays count from 1 (`mfcc_1 … mfcc_20`), and every name carries its unit.
+//! arrays count from 1 (`mfcc_1 … mfcc_20`), and every name carries its unit. Family shares are
+//! the one group that keeps a prefix: `shares.{family}` becomes `share_<slug>`
+//! (`shares.driven guitar` → `share_driven_guitar`, with `weft_engine::windows::slug`; keys that
+//! already read `share_…` are kept).
 
 use anyhow::{Context, Result, bail};
 use serde::Serialize;
@@ -152,6 +155,14 @@ impl Flattener<'_> {
         let name = match path.len() {
             0 => "value".to_owned(),
             1 => path[0].clone(),
+            _ if path[0] == "shares" => {
+                let key = path[1..].join("_");
+                if key.starts_with("share_") {
+                    key
+                } else {
+                    format!("share_{}", weft_engine::windows::slug(&key))
+                }
+            }
             _ => path[1..].join("_"),
         };
         match self.peek()? {
@@ -368,6 +379,23 @@ mod tests {
         assert_eq!(
             text,
             "t_s,name,rms_dbfs,mfcc_1,mfcc_2,stat_mean\n0.0,\"a,b\",-6.5,1.0,-2.0,4.0\n0.5,\"a,b\",-6.5,1.0,-2.0,4.0\n"
+        );
+    }
+
+    #[test]
+    fn share_columns_keep_their_prefix() {
+        let mut w = RowWriter::new(Vec::new(), RowFormat::Csv);
+        let row = serde_json::json!({
+            "t": 0.5,
+            "shares": {"driven guitar": 0.25, "share_bass": 0.5},
+            "unexplained": 0.25
+        });
+        w.write(&row).expect("write");
+        let text = String::from_utf8(w.into_inner().expect("flush")).expect("utf8");
+        assert_eq!(
+            text,
+            // serde_json's map orders keys alphabetically.
+            "share_driven_guitar,share_bass,t_s,unexplained\n0.25,0.5,0.5,0.25\n"
         );
     }
 

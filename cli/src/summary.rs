@@ -1,11 +1,12 @@
 //! What a batch prints: the summary table for people, JSON lines for machines, and the closing
 //! throughput line.
 //!
-//! The table is a list of [`Column`]s, each a heading and a function of a file's report (level
-//! figures and the range of window means of the centroid and flatness today), so the dominant
-//! families and the closeness add columns here once shares and style models exist.
+//! The table is a list of [`Column`]s, each a heading and a function of a file's report: level
+//! figures, the range of window means of the centroid and flatness, the dominant families (the
+//! three with the highest mean share over the frames with a signal) when shares were estimated,
+//! and the mean closeness and the time above 50 % with a style model.
 
-use crate::analyze::{BatchResult, FileReport};
+use crate::analyze::{BatchResult, FileReport, StyleTarget};
 use crate::plot::clock;
 use crate::timeline::{Totals, WindowRow};
 use serde::Serialize;
@@ -21,6 +22,50 @@ struct Column {
 fn db(v: f32) -> String {
     format!("{v:.1}")
 }
+
+/// Families named in the table's "dominant families" column.
+pub const DOMINANT_FAMILIES: usize = 3;
+
+fn percent(v: f64) -> String {
+    format!("{:.0} %", 100.0 * v)
+}
+
+/// The dominant families of a file: `voice 41 %, piano 22 %, bass 9 %`.
+pub fn dominant_text(r: &FileReport) -> String {
+    let d = r.totals.dominant_families(DOMINANT_FAMILIES);
+    if d.is_empty() {
+        return "(silent)".to_owned();
+    }
+    d.iter()
+        .map(|(name, v)| format!("{name} {}", percent(f64::from(*v))))
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+const SHARE_COLUMNS: &[Column] = &[Column {
+    heading: "dominant families (mean share)",
+    right_aligned: false,
+    cell: dominant_text,
+}];
+
+const STYLE_COLUMNS: &[Column] = &[
+    Column {
+        heading: "closeness mean",
+        right_aligned: true,
+        cell: |r| {
+            r.closeness_summary()
+                .map_or_else(String::new, |c| percent(c.mean))
+        },
+    },
+    Column {
+        heading: "time > 50 %",
+        right_aligned: true,
+        cell: |r| {
+            r.closeness_summary()
+                .map_or_else(String::new, |c| percent(c.above_half))
+        },
+    },
+];
 
 const COLUMNS: &[Column] = &[
     Column {
@@ -86,15 +131,22 @@ pub fn table(batch: &BatchResult) -> String {
     if ok.is_empty() {
         return String::new();
     }
+    let mut columns: Vec<&Column> = COLUMNS.iter().collect();
+    if ok.iter().any(|r| r.totals.shares.is_some()) {
+        columns.extend(SHARE_COLUMNS);
+    }
+    if ok.iter().any(|r| !r.style_estimates.is_empty()) {
+        columns.extend(STYLE_COLUMNS);
+    }
     let mut rows: Vec<Vec<String>> = vec![
         std::iter::once("file".to_owned())
-            .chain(COLUMNS.iter().map(|c| c.heading.to_owned()))
+            .chain(columns.iter().map(|c| c.heading.to_owned()))
             .collect(),
     ];
     for r in &ok {
         rows.push(
             std::iter::once(r.path.display().to_string())
-                .chain(COLUMNS.iter().map(|c| (c.cell)(r)))
+                .chain(columns.iter().map(|c| (c.cell)(r)))
                 .collect(),
         );
     }
@@ -107,7 +159,7 @@ pub fn table(batch: &BatchResult) -> String {
             .iter()
             .enumerate()
             .map(|(i, cell)| {
-                let right = i > 0 && COLUMNS[i - 1].right_aligned;
+                let right = i > 0 && columns[i - 1].right_aligned;
                 if right {
                     format!("{cell:>w$}", w = widths[i])
                 } else {
@@ -159,15 +211,38 @@ struct FileJson<'a> {
     #[serde(skip_serializing_if = "Option::is_none")]
     plot_file: Option<String>,
     #[serde(skip_serializing_if = "Option::is_none")]
+    style: Option<StyleJson<'a>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
     windows: Option<&'a [WindowRow]>,
+}
+
+/// A file's closeness to the style model's category, as JSON.
+#[derive(Serialize)]
+struct StyleJson<'a> {
+    model: String,
+    category: &'a str,
+    /// Mean closeness (0–1), fraction of style windows above 0.5, and their count.
+    closeness: crate::analyze::ClosenessSummary,
+    /// Every style window: first and last frame centres (s) and closeness (0–1).
+    style_windows: Vec<StyleWindowJson>,
+}
+
+#[derive(Serialize)]
+struct StyleWindowJson {
+    start_s: f64,
+    end_s: f64,
+    closeness: f64,
 }
 
 fn path_text(p: &Path) -> String {
     p.display().to_string()
 }
 
-/// One JSON line per file, in input order.
-pub fn json_lines(batch: &BatchResult) -> serde_json::Result<Vec<String>> {
+/// One JSON line per file, in input order; `style` is the style model the batch used.
+pub fn json_lines(
+    batch: &BatchResult,
+    style: Option<&StyleTarget>,
+) -> serde_json::Result<Vec<String>> {
     batch
         .results
         .iter()
@@ -193,6 +268,22 @@ pub fn json_lines(batch: &BatchResult) -> serde_json::Result<Vec<String>> {
                     totals: Some(&r.totals),
                     rows_file: r.rows_file.as_deref().map(path_text),
                     plot_file: r.plot_file.as_deref().map(path_text),
+                    style: style
+                        .zip(r.closeness_summary())
+                        .map(|(t, closeness)| StyleJson {
+                            model: path_text(&t.path),
+                            category: t.category_name(),
+                            closeness,
+                            style_windows: r
+                                .style_estimates
+                                .iter()
+                                .map(|e| StyleWindowJson {
+                                    start_s: e.start_s,
+                                    end_s: e.end_s,
+                                    closeness: e.closeness,
+                                })
+                                .collect(),
+                        }),
                     windows: Some(&r.windows),
                 },
                 Err(reason) => FileJson {
@@ -205,6 +296,7 @@ pub fn json_lines(batch: &BatchResult) -> serde_json::Result<Vec<String>> {
                     totals: None,
                     rows_file: None,
                     plot_file: None,
+                    style: None,
                     windows: None,
                 },
             };

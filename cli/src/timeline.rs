@@ -5,11 +5,98 @@
 //! [`crate::report`] turn them into JSON lines or CSV columns generically, so a group of values
 //! added to a row (descriptors, shares, closeness) appears in every output without touching the
 //! writers.
+//!
+//! Family shares (when the analysis has a palette) follow one rule everywhere: a window's share of
+//! a family is the mean of the engine's *raw* per-frame shares over the window's frames that
+//! carry a signal (`Shares::signal`: above the engine's no-signal floor,
+//! `weft_engine::shares::NO_SIGNAL_DB`). Silent frames are left out rather than averaged in as
+//! zeros, so a window half silence, half bass reads "bass 100 %", and the shares and
+//! `unexplained` of a window with any signal sum to 1. A window without any such frame reads 0
+//! for every share and for `unexplained` (the engine's own convention for silence), and its
+//! `signal_frames` is 0.
+//!
+//! With a style model, each window row also carries a `closeness`: see [`ClosenessAssigner`]
+//! for which style window a row takes it from.
 
 use serde::Serialize;
+use serde::ser::SerializeMap;
+use std::collections::VecDeque;
+use std::sync::Arc;
 use weft_engine::FrameResult;
 use weft_engine::level::amplitude_to_db;
+use weft_engine::palette::{MAX_FAMILIES, Palette};
+use weft_engine::shares::Shares;
 use weft_engine::timbre::{Descriptors, N_CONTRAST, N_MFCC, N_SCALARS};
+use weft_engine::windows::slug;
+
+/// The names under which a palette's families appear in rows.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ShareNames {
+    /// Family names as the palette spells them ("driven guitar"): the keys of `--frames`
+    /// JSON lines' `shares` object.
+    pub families: Vec<String>,
+    /// `share_<slug>` per family (`share_driven_guitar`, see `weft_engine::windows::slug`): the
+    /// window timeline's keys and every CSV column.
+    pub columns: Vec<String>,
+    /// Index of each family's section in `sections`.
+    pub section_of: Vec<usize>,
+    /// Section names, in the palette's order.
+    pub sections: Vec<String>,
+}
+
+impl ShareNames {
+    /// The names of `palette`'s families.
+    pub fn of(palette: &Palette) -> Self {
+        let families: Vec<String> = palette.families().iter().map(|f| f.name.clone()).collect();
+        Self {
+            columns: families
+                .iter()
+                .map(|f| format!("share_{}", slug(f)))
+                .collect(),
+            section_of: palette.families().iter().map(|f| f.section).collect(),
+            sections: palette.sections().to_vec(),
+            families,
+        }
+    }
+
+    /// Number of families.
+    pub fn len(&self) -> usize {
+        self.families.len()
+    }
+}
+
+/// Share values with the names they are written under (a JSON object, or one CSV column each).
+#[derive(Debug, Clone, PartialEq)]
+pub struct NamedShares {
+    /// The names.
+    pub names: Arc<ShareNames>,
+    /// Whether to key by family name (`--frames`) instead of `share_<slug>`.
+    pub by_family_name: bool,
+    /// One value per family, 0–1, in the palette's order.
+    pub values: Vec<f32>,
+}
+
+impl NamedShares {
+    /// The value of family `i`.
+    pub fn get(&self, i: usize) -> f32 {
+        self.values.get(i).copied().unwrap_or(0.0)
+    }
+}
+
+impl Serialize for NamedShares {
+    fn serialize<S: serde::Serializer>(&self, serializer: S) -> Result<S::Ok, S::Error> {
+        let keys = if self.by_family_name {
+            &self.names.families
+        } else {
+            &self.names.columns
+        };
+        let mut map = serializer.serialize_map(Some(keys.len()))?;
+        for (k, v) in keys.iter().zip(&self.values) {
+            map.serialize_entry(k, v)?;
+        }
+        map.end()
+    }
+}
 
 /// One analysis frame, as `--frames` writes it.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
@@ -20,6 +107,45 @@ pub struct FrameRow {
     pub level: FrameLevel,
     /// The frame's timbre descriptors, named with their units (see `weft_engine::timbre`).
     pub descriptors: Descriptors,
+    /// The frame's raw family shares, when the analysis has a palette (written through
+    /// [`FrameOut`], which knows the families' names).
+    #[serde(skip)]
+    pub shares: Option<Shares>,
+}
+
+/// A frame row as `--frames` writes it: `t`, `level`, `descriptors` and, with a palette, `shares`
+/// (family name → raw share, 0–1) and `unexplained` (0–1). In CSV the shares become `share_<slug>`
+/// columns.
+pub struct FrameOut<'a> {
+    /// The row.
+    pub row: &'a FrameRow,
+    /// The palette's names, when the row has shares.
+    pub names: Option<&'a Arc<ShareNames>>,
+}
+
+impl Serialize for FrameOut<'_> {
+    fn serialize<S: serde::Serializer>(&self, serializer: S) -> Result<S::Ok, S::Error> {
+        let shares = self.row.shares.zip(self.names);
+        let mut map = serializer.serialize_map(Some(if shares.is_some() { 5 } else { 3 }))?;
+        map.serialize_entry("t", &self.row.t)?;
+        map.serialize_entry("level", &self.row.level)?;
+        map.serialize_entry("descriptors", &self.row.descriptors)?;
+        if let Some((s, names)) = shares {
+            let values = (0..names.len())
+                .map(|f| if f < s.families { s.share[f] } else { 0.0 })
+                .collect();
+            map.serialize_entry(
+                "shares",
+                &NamedShares {
+                    names: Arc::clone(names),
+                    by_family_name: true,
+                    values,
+                },
+            )?;
+            map.serialize_entry("unexplained", &s.unexplained)?;
+        }
+        map.end()
+    }
 }
 
 /// A frame's level (mid and side, see `weft_engine::level`).
@@ -32,8 +158,9 @@ pub struct FrameLevel {
 }
 
 impl FrameRow {
-    /// The row for one engine frame.
-    pub fn from_engine(frame: &FrameResult) -> Self {
+    /// The row for one engine frame; `with_shares` when the analyzer has a palette (frames
+    /// before its first column carry zero shares without a signal).
+    pub fn from_engine(frame: &FrameResult, with_shares: bool) -> Self {
         Self {
             t: frame.time_s,
             level: FrameLevel {
@@ -41,12 +168,15 @@ impl FrameRow {
                 peak_dbfs: frame.level.peak_db,
             },
             descriptors: frame.descriptors,
+            shares: with_shares.then_some(frame.shares.raw),
         }
     }
 }
 
 /// One window of the timeline: the frames whose centres fall in `[start_s, end_s)`.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+///
+/// Field order is column order: times, level, closeness, shares, then the descriptors.
+#[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct WindowRow {
     /// Start of the window, seconds.
     pub start_s: f64,
@@ -56,8 +186,29 @@ pub struct WindowRow {
     pub frames: u32,
     /// The window's level.
     pub level: WindowLevel,
+    /// Closeness to the style model's category, 0–1 (only with a style model; `null` if no style
+    /// window could be assigned). See [`ClosenessAssigner`].
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub closeness: Option<Option<f32>>,
+    /// Mean raw share of each family over the window's frames with a signal, 0–1 (only with a
+    /// palette; see the module documentation).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub shares: Option<NamedShares>,
+    /// Mean share the palette cannot explain, 0–1, same frames.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub unexplained: Option<f32>,
+    /// Frames of the window with a signal to share out (the frames the shares average).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub signal_frames: Option<u32>,
     /// Mean and standard deviation of the frames' descriptors.
     pub descriptors: WindowDescriptors,
+}
+
+impl WindowRow {
+    /// Centre of the window, seconds.
+    pub fn centre_s(&self) -> f64 {
+        0.5 * (self.start_s + self.end_s)
+    }
 }
 
 /// A window's level.
@@ -243,7 +394,7 @@ impl DescriptorRanges {
 }
 
 /// A file's whole-length figures, accumulated over every frame.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct Totals {
     /// Analysis frames.
     pub frames: u64,
@@ -257,6 +408,83 @@ pub struct Totals {
     pub quietest_window_dbfs: f32,
     /// Lowest and highest window mean of the scalar descriptors.
     pub descriptor_ranges: DescriptorRanges,
+    /// Mean raw share of each family over all frames with a signal, 0–1 (with a palette).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub shares: Option<NamedShares>,
+    /// Mean unexplained share over the same frames, 0–1.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub unexplained: Option<f32>,
+    /// Frames with a signal to share out.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub signal_frames: Option<u64>,
+}
+
+impl Totals {
+    /// The `n` families with the highest mean share, highest first (ties keep palette order),
+    /// with their shares (0–1); families at 0 are left out.
+    pub fn dominant_families(&self, n: usize) -> Vec<(&str, f32)> {
+        let Some(shares) = &self.shares else {
+            return Vec::new();
+        };
+        let mut order: Vec<usize> = (0..shares.values.len())
+            .filter(|&i| shares.values[i] > 0.0)
+            .collect();
+        order.sort_by(|&a, &b| shares.values[b].total_cmp(&shares.values[a]));
+        order
+            .into_iter()
+            .take(n)
+            .map(|i| (shares.names.families[i].as_str(), shares.values[i]))
+            .collect()
+    }
+}
+
+/// Sums of raw shares over frames with a signal.
+#[derive(Debug, Clone, Copy)]
+struct ShareAcc {
+    sum: [f64; MAX_FAMILIES],
+    unexplained: f64,
+    frames: u64,
+}
+
+impl ShareAcc {
+    fn new() -> Self {
+        Self {
+            sum: [0.0; MAX_FAMILIES],
+            unexplained: 0.0,
+            frames: 0,
+        }
+    }
+
+    fn add(&mut self, s: &Shares) {
+        if !s.signal {
+            return;
+        }
+        for (acc, &v) in self
+            .sum
+            .iter_mut()
+            .zip(&s.share[..s.families.min(MAX_FAMILIES)])
+        {
+            *acc += f64::from(v);
+        }
+        self.unexplained += f64::from(s.unexplained);
+        self.frames += 1;
+    }
+
+    /// Means over the frames with a signal (all 0 without one).
+    fn means(&self, names: &Arc<ShareNames>) -> (NamedShares, f32) {
+        let n = self.frames.max(1) as f64;
+        let values = (0..names.len())
+            .map(|i| (self.sum.get(i).copied().unwrap_or(0.0) / n) as f32)
+            .collect();
+        (
+            NamedShares {
+                names: Arc::clone(names),
+                by_family_name: false,
+                values,
+            },
+            (self.unexplained / n) as f32,
+        )
+    }
 }
 
 /// Energy sums for one window.
@@ -268,6 +496,7 @@ struct WindowAcc {
     rms_max_db: f32,
     peak_db: f32,
     descriptors: DescriptorAcc,
+    shares: ShareAcc,
 }
 
 impl WindowAcc {
@@ -279,6 +508,7 @@ impl WindowAcc {
             rms_max_db: f32::NEG_INFINITY,
             peak_db: f32::NEG_INFINITY,
             descriptors: DescriptorAcc::new(),
+            shares: ShareAcc::new(),
         }
     }
 
@@ -288,6 +518,9 @@ impl WindowAcc {
         self.rms_max_db = self.rms_max_db.max(frame.level.rms_dbfs);
         self.peak_db = self.peak_db.max(frame.level.peak_dbfs);
         self.descriptors.add(&frame.descriptors);
+        if let Some(s) = &frame.shares {
+            self.shares.add(s);
+        }
     }
 }
 
@@ -318,12 +551,20 @@ pub struct WindowSummarizer {
     loudest_db: f32,
     quietest_db: f32,
     ranges: DescriptorRanges,
+    share_names: Option<Arc<ShareNames>>,
+    total_shares: ShareAcc,
 }
 
 impl WindowSummarizer {
     /// Windows of `window_len` samples for frames `hop_len` samples apart at `sample_rate_hz`.
     /// `window_len` must be at least `hop_len` (checked by the caller), so no window is empty.
-    pub fn new(window_len: u64, hop_len: u64, sample_rate_hz: f64) -> Self {
+    /// With `share_names`, rows and totals carry the frames' family shares.
+    pub fn new(
+        window_len: u64,
+        hop_len: u64,
+        sample_rate_hz: f64,
+        share_names: Option<Arc<ShareNames>>,
+    ) -> Self {
         debug_assert!(window_len >= hop_len && hop_len > 0);
         Self {
             window_len,
@@ -337,6 +578,8 @@ impl WindowSummarizer {
             loudest_db: f32::NEG_INFINITY,
             quietest_db: f32::INFINITY,
             ranges: DescriptorRanges::empty(),
+            share_names,
+            total_shares: ShareAcc::new(),
         }
     }
 
@@ -366,6 +609,10 @@ impl WindowSummarizer {
         } else {
             (weft_engine::SILENCE_FLOOR_DB, weft_engine::SILENCE_FLOOR_DB)
         };
+        let shares = self
+            .share_names
+            .as_ref()
+            .map(|names| self.total_shares.means(names));
         Totals {
             frames: self.total_frames,
             rms_dbfs: power_to_db(self.total_power / self.total_frames.max(1) as f64),
@@ -373,6 +620,9 @@ impl WindowSummarizer {
             loudest_window_dbfs: loudest,
             quietest_window_dbfs: quietest,
             descriptor_ranges: self.ranges,
+            signal_frames: shares.is_some().then_some(self.total_shares.frames),
+            unexplained: shares.as_ref().map(|s| s.1),
+            shares: shares.map(|s| s.0),
         }
     }
 
@@ -386,6 +636,9 @@ impl WindowSummarizer {
         self.total_frames += 1;
         self.total_power += db_to_power(frame.level.rms_dbfs);
         self.total_peak_db = self.total_peak_db.max(frame.level.peak_dbfs);
+        if let Some(s) = &frame.shares {
+            self.total_shares.add(s);
+        }
         match &mut self.current {
             Some(acc) if acc.index == window => acc.add(frame),
             _ => {
@@ -415,6 +668,7 @@ impl WindowSummarizer {
         self.quietest_db = self.quietest_db.min(rms_dbfs);
         let descriptors = acc.descriptors.summary(acc.frames);
         self.ranges.add(&descriptors);
+        let shares = self.share_names.as_ref().map(|n| acc.shares.means(n));
         emit(&WindowRow {
             start_s: start as f64 / self.sample_rate_hz,
             end_s: end as f64 / self.sample_rate_hz,
@@ -424,8 +678,86 @@ impl WindowSummarizer {
                 rms_max_dbfs: acc.rms_max_db,
                 peak_dbfs: acc.peak_db,
             },
+            closeness: None,
+            signal_frames: shares.is_some().then_some(acc.shares.frames as u32),
+            unexplained: shares.as_ref().map(|s| s.1),
+            shares: shares.map(|s| s.0),
             descriptors,
         });
+    }
+}
+
+/// Gives each timeline row the closeness of one style window: **the style window whose centre
+/// is nearest the row's centre** (the earlier one on a tie). Style windows are 3 s long every
+/// 1 s by default (`weft_engine::windows`) while rows follow `--window`, so a row near the start
+/// takes the first style window and a file shorter than one style window gives every row the
+/// same value.
+///
+/// Style windows complete up to a window length after the rows they cover, so rows are held
+/// back until the nearest style window is known (a style window centred at or after the row's
+/// centre has arrived, or the file ended): a few rows at most, whatever the file's length.
+#[derive(Debug, Default)]
+pub struct ClosenessAssigner {
+    pending: VecDeque<WindowRow>,
+    /// Style windows not yet ruled out: (centre, closeness), in time order.
+    estimates: VecDeque<(f64, f32)>,
+}
+
+impl ClosenessAssigner {
+    /// An assigner with nothing held.
+    pub fn new() -> Self {
+        Self::default()
+    }
+
+    /// A completed row; emits the rows whose closeness is decided.
+    pub fn push_row(&mut self, row: WindowRow, emit: &mut impl FnMut(&WindowRow)) {
+        self.pending.push_back(row);
+        self.release(false, emit);
+    }
+
+    /// A completed style window (centre in seconds, closeness 0–1), in time order.
+    pub fn push_estimate(
+        &mut self,
+        centre_s: f64,
+        closeness: f32,
+        emit: &mut impl FnMut(&WindowRow),
+    ) {
+        self.estimates.push_back((centre_s, closeness));
+        self.release(false, emit);
+    }
+
+    /// The end of the file: emits every held row.
+    pub fn finish(&mut self, emit: &mut impl FnMut(&WindowRow)) {
+        self.release(true, emit);
+    }
+
+    fn release(&mut self, finishing: bool, emit: &mut impl FnMut(&WindowRow)) {
+        while let Some(front) = self.pending.front() {
+            let c = front.centre_s();
+            let after = self.estimates.iter().position(|&(e, _)| e >= c);
+            if after.is_none() && !finishing {
+                return;
+            }
+            // The last style window centred at or before c, and the first at or after it.
+            let before = self.estimates.iter().rposition(|&(e, _)| e <= c);
+            let chosen = match (before, after) {
+                (Some(b), Some(a)) => {
+                    let (eb, ea) = (self.estimates[b].0, self.estimates[a].0);
+                    if c - eb <= ea - c { b } else { a }
+                }
+                (Some(i), None) | (None, Some(i)) => i,
+                (None, None) => usize::MAX,
+            };
+            let value = self.estimates.get(chosen).map(|&(_, v)| v);
+            if let Some(mut row) = self.pending.pop_front() {
+                row.closeness = Some(value);
+                emit(&row);
+            }
+            // Later rows are centred later: windows before `before` can no longer be nearest.
+            if let Some(b) = before {
+                self.estimates.drain(..b);
+            }
+        }
     }
 }
 
@@ -449,6 +781,7 @@ mod tests {
                 peak_dbfs,
             },
             descriptors,
+            shares: None,
         }
     }
 
@@ -458,16 +791,16 @@ mod tests {
         window: u64,
         levels: &[(f32, f32)],
     ) -> (Vec<WindowRow>, Totals) {
-        let mut s = WindowSummarizer::new(window, hop, 100.0);
+        let mut s = WindowSummarizer::new(window, hop, 100.0, None);
         let mut rows = Vec::new();
         for (k, &(r, p)) in levels.iter().enumerate() {
             s.push(
                 k as u64,
                 frame(k as f64 * hop as f64 / 100.0, r, p),
-                &mut |w| rows.push(*w),
+                &mut |w| rows.push(w.clone()),
             );
         }
-        let totals = s.finish(n_samples, &mut |w| rows.push(*w));
+        let totals = s.finish(n_samples, &mut |w| rows.push(w.clone()));
         (rows, totals)
     }
 
@@ -519,6 +852,133 @@ mod tests {
         assert_eq!(rows.len(), 2);
         assert_eq!(rows[1].frames, 3);
         assert_eq!(rows[1].end_s, 2.0);
+    }
+
+    fn names() -> Arc<ShareNames> {
+        Arc::new(ShareNames {
+            families: vec!["bass".into(), "driven guitar".into()],
+            columns: vec!["share_bass".into(), "share_driven_guitar".into()],
+            section_of: vec![0, 1],
+            sections: vec!["bass".into(), "guitars".into()],
+        })
+    }
+
+    fn with_shares(mut row: FrameRow, signal: bool, bass: f32, guitar: f32) -> FrameRow {
+        let mut s = Shares {
+            signal,
+            families: 2,
+            ..Shares::default()
+        };
+        s.share[0] = bass;
+        s.share[1] = guitar;
+        s.unexplained = if signal { 1.0 - bass - guitar } else { 0.0 };
+        row.shares = Some(s);
+        row
+    }
+
+    #[test]
+    fn shares_average_the_frames_with_a_signal() {
+        // Window 0: two frames with a signal (bass 0.6 and 0.2) and one silent frame;
+        // window 1: silent only. Hop 25, window 75 samples at 100 Hz.
+        let frames = [
+            with_shares(frame(0.0, -20.0, -10.0), true, 0.6, 0.3),
+            with_shares(frame(0.25, -20.0, -10.0), true, 0.2, 0.5),
+            with_shares(frame(0.5, -160.0, -160.0), false, 0.0, 0.0),
+            with_shares(frame(0.75, -160.0, -160.0), false, 0.0, 0.0),
+        ];
+        let mut s = WindowSummarizer::new(75, 25, 100.0, Some(names()));
+        let mut rows = Vec::new();
+        for (k, f) in frames.iter().enumerate() {
+            s.push(k as u64, *f, &mut |w| rows.push(w.clone()));
+        }
+        let totals = s.finish(100, &mut |w| rows.push(w.clone()));
+        assert_eq!(rows.len(), 2);
+        let w0 = rows[0].shares.as_ref().expect("shares");
+        assert!((w0.get(0) - 0.4).abs() < 1e-6 && (w0.get(1) - 0.4).abs() < 1e-6);
+        assert!((rows[0].unexplained.expect("unexplained") - 0.2).abs() < 1e-6);
+        assert_eq!(rows[0].signal_frames, Some(2));
+        let w1 = rows[1].shares.as_ref().expect("shares");
+        assert_eq!(
+            (w1.get(0), w1.get(1), rows[1].signal_frames),
+            (0.0, 0.0, Some(0))
+        );
+        // The whole file: the same two frames; guitar ties bass and keeps palette order.
+        assert_eq!(totals.signal_frames, Some(2));
+        let dominant = totals.dominant_families(3);
+        assert_eq!(dominant.len(), 2);
+        assert_eq!(dominant[0].0, "bass");
+        // Written under share_<slug> keys.
+        let json = serde_json::to_value(&rows[0]).expect("json");
+        assert!((json["shares"]["share_driven_guitar"].as_f64().expect("v") - 0.4).abs() < 1e-6);
+        let out = FrameOut {
+            row: &frames[0],
+            names: Some(&names()),
+        };
+        let json = serde_json::to_value(&out).expect("json");
+        assert!((json["shares"]["driven guitar"].as_f64().expect("v") - 0.3).abs() < 1e-6);
+    }
+
+    fn row_at(start_s: f64, end_s: f64) -> WindowRow {
+        let (rows, _) = run(100, 50, 100, &[(-20.0, -10.0); 3]);
+        WindowRow {
+            start_s,
+            end_s,
+            ..rows[0].clone()
+        }
+    }
+
+    #[test]
+    fn rows_take_the_nearest_style_window_in_order() {
+        // Rows of 0.5 s; style windows centred at 1.5, 2.5, 3.5 s arrive 1.5 s after their
+        // centre, as 3-s windows every second do.
+        let mut a = ClosenessAssigner::new();
+        let mut out: Vec<(f64, Option<f32>)> = Vec::new();
+        let mut emit = |r: &WindowRow| out.push((r.centre_s(), r.closeness.flatten()));
+        let estimates = [(1.5, 0.1), (2.5, 0.2), (3.5, 0.3)];
+        let mut next = 0;
+        for i in 0..10 {
+            let (start, end) = (0.5 * f64::from(i), 0.5 * f64::from(i + 1));
+            while next < estimates.len() && estimates[next].0 + 1.5 <= end {
+                a.push_estimate(estimates[next].0, estimates[next].1, &mut emit);
+                next += 1;
+            }
+            a.push_row(row_at(start, end), &mut emit);
+        }
+        for &(c, v) in &estimates[next..] {
+            a.push_estimate(c, v, &mut emit);
+        }
+        a.finish(&mut emit);
+        let want = [
+            (0.25, 0.1),
+            (0.75, 0.1),
+            (1.25, 0.1),
+            (1.75, 0.1),
+            (2.25, 0.2),
+            (2.75, 0.2),
+            (3.25, 0.3),
+            (3.75, 0.3),
+            (4.25, 0.3),
+            (4.75, 0.3),
+        ];
+        assert_eq!(out.len(), want.len());
+        for ((c, v), (wc, wv)) in out.iter().zip(want) {
+            assert_eq!(*c, wc);
+            assert_eq!(*v, Some(wv), "row at {c}");
+        }
+        // A tie (row centre 2.0 between 1.5 and 2.5) takes the earlier window.
+        let mut a = ClosenessAssigner::new();
+        let mut got = None;
+        a.push_estimate(1.5, 0.1, &mut |_| {});
+        a.push_row(row_at(1.5, 2.5), &mut |r| got = Some(r.closeness));
+        a.push_estimate(2.5, 0.2, &mut |r| got = Some(r.closeness));
+        assert_eq!(got, Some(Some(Some(0.1))));
+        // No style window at all: rows still come out, without a value.
+        let mut a = ClosenessAssigner::new();
+        let mut got = Vec::new();
+        a.push_row(row_at(0.0, 1.0), &mut |r| got.push(r.closeness));
+        assert!(got.is_empty(), "held until decided");
+        a.finish(&mut |r| got.push(r.closeness));
+        assert_eq!(got, [Some(None)]);
     }
 
     #[test]

@@ -7,7 +7,7 @@
 //! References, each independent of the code under test:
 //! - the engine (`weft_engine::Analyzer`) run directly on the samples, with the window summary
 //!   computed here from its definition (energy mean of frame RMS, maximum peak, frames whose
-//!   centres fall in the window);
+//!   centres fall in the window; family shares averaged over the window's frames with a signal);
 //! - hound 3.5 reads the WAV files written here;
 //! - FFmpeg 5.1 (Debian's `ffmpeg`, installed by `cargo xtask setup`) encodes FLAC, AIFF, ALAC,
 //!   MP3, Ogg Vorbis and AAC (M4A and ADTS), and decodes them again to float WAV: the CLI's timeline of the encoded
@@ -18,7 +18,10 @@ use rand::{Rng, SeedableRng, rngs::SmallRng};
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
+use weft_engine::palette::Palette;
+use weft_engine::shares::{Shares, SharesSettings};
 use weft_engine::timbre::Descriptors;
+use weft_engine::windows::slug;
 use weft_engine::{AnalysisSettings, Analyzer, FrameConfig, FrameResult};
 
 const SETUP_HINT: &str = "run `cargo xtask setup` (it installs ffmpeg and time)";
@@ -207,24 +210,8 @@ fn engine_reference(
     window_s: f64,
     whole_clip: bool,
 ) -> (Vec<RefFrame>, Vec<RefWindow>) {
-    let n = samples.len() / channels;
-    let (mut mid, mut side) = (Vec::with_capacity(n), Vec::with_capacity(n));
-    for f in samples.chunks_exact(channels) {
-        match channels {
-            1 => {
-                mid.push(f[0]);
-                side.push(0.0);
-            }
-            2 => {
-                mid.push(0.5 * (f[0] + f[1]));
-                side.push(0.5 * (f[0] - f[1]));
-            }
-            _ => {
-                mid.push(f.iter().sum::<f32>() * (1.0 / channels as f32));
-                side.push(0.5 * (f[0] - f[1]));
-            }
-        }
-    }
+    let (mid, side) = mid_side(samples, channels);
+    let n = mid.len();
     let framing = framing.unwrap_or_else(|| FrameConfig::for_sample_rate(f64::from(rate_hz)));
     let settings = AnalysisSettings::new(f64::from(rate_hz), framing).expect("valid settings");
     let mut analyzer = Analyzer::new(settings);
@@ -275,6 +262,75 @@ fn engine_reference(
             }
         })
         .collect();
+    (frames, windows)
+}
+
+/// Mid (mean of the channels) and side (half the difference of the first two), as the CLI
+/// documents its analysis signal.
+fn mid_side(samples: &[f32], channels: usize) -> (Vec<f32>, Vec<f32>) {
+    let n = samples.len() / channels;
+    let (mut mid, mut side) = (Vec::with_capacity(n), Vec::with_capacity(n));
+    for f in samples.chunks_exact(channels) {
+        match channels {
+            1 => {
+                mid.push(f[0]);
+                side.push(0.0);
+            }
+            2 => {
+                mid.push(0.5 * (f[0] + f[1]));
+                side.push(0.5 * (f[0] - f[1]));
+            }
+            _ => {
+                mid.push(f.iter().sum::<f32>() * (1.0 / channels as f32));
+                side.push(0.5 * (f[0] - f[1]));
+            }
+        }
+    }
+    (mid, side)
+}
+
+/// One window's shares as the engine gives them: the mean share per family, the mean
+/// unexplained share, and the frames with a signal they average.
+type ShareWindow = (Vec<f64>, f64, usize);
+
+/// The engine with the built-in palette, streamed (the live convention, default framing):
+/// every frame's raw shares, and per window of `window_s` the mean share of each family and of
+/// the unexplained part over the frames with a signal, and the count of those frames.
+fn engine_shares(
+    samples: &[f32],
+    channels: usize,
+    rate_hz: u32,
+    window_s: f64,
+) -> (Vec<Shares>, Vec<ShareWindow>) {
+    let (mid, side) = mid_side(samples, channels);
+    let palette = Palette::default_palette();
+    let settings = AnalysisSettings::for_sample_rate(f64::from(rate_hz)).expect("settings");
+    let mut analyzer =
+        Analyzer::with_palette(settings, &palette, SharesSettings::default()).expect("analyzer");
+    let mut frames = Vec::new();
+    for (m, s) in mid.chunks(4096).zip(side.chunks(4096)) {
+        analyzer.process(m, Some(s), |f| frames.push(f.shares.raw));
+    }
+    analyzer.finish(|f| frames.push(f.shares.raw));
+    let window_len = (window_s * f64::from(rate_hz)).round() as usize;
+    let count = mid.len().div_ceil(window_len).max(1);
+    let families = palette.families().len();
+    let mut windows = vec![(vec![0.0; families], 0.0, 0usize); count];
+    for (k, s) in frames.iter().enumerate() {
+        let w = &mut windows[(k * settings.framing.hop_len / window_len).min(count - 1)];
+        if s.signal {
+            for (acc, v) in w.0.iter_mut().zip(&s.share[..families]) {
+                *acc += f64::from(*v);
+            }
+            w.1 += f64::from(s.unexplained);
+            w.2 += 1;
+        }
+    }
+    for w in &mut windows {
+        let n = w.2.max(1) as f64;
+        w.0.iter_mut().for_each(|v| *v /= n);
+        w.1 /= n;
+    }
     (frames, windows)
 }
 
@@ -384,7 +440,7 @@ fn assert_timeline_matches(
 }
 
 const TIMELINE_HEADER_START: &str =
-    "start_s,end_s,frames,rms_dbfs,rms_max_dbfs,peak_dbfs,centroid_hz_mean,centroid_hz_sd";
+    "start_s,end_s,frames,rms_dbfs,rms_max_dbfs,peak_dbfs,share_kick,share_snare,";
 
 #[test]
 fn wav_timelines_equal_the_engine_on_hounds_samples() {
@@ -428,8 +484,10 @@ fn wav_timelines_equal_the_engine_on_hounds_samples() {
             header.join(",").starts_with(TIMELINE_HEADER_START),
             "{header:?}"
         );
-        // 6 level columns, mean and sd of 8 scalar descriptors, 20 MFCCs and 7 contrast bands.
-        assert_eq!(header.len(), 6 + 2 * (8 + 20 + 7));
+        // 6 level columns, a share per family, unexplained and signal frames, then mean and sd
+        // of 8 scalar descriptors, 20 MFCCs and 7 contrast bands.
+        let families = Palette::default_palette().families().len();
+        assert_eq!(header.len(), 6 + families + 2 + 2 * (8 + 20 + 7));
         assert_timeline_matches(
             &format!("seed {seed:#x} {name}"),
             &rows,
@@ -443,6 +501,162 @@ fn wav_timelines_equal_the_engine_on_hounds_samples() {
     for &(name, _, _, _, _) in &cases {
         assert!(table.contains(name), "{table}");
     }
+}
+
+#[test]
+fn family_shares_in_timelines_and_frames_equal_the_engine() {
+    let seed = 0xC11_0007;
+    let dir = tempfile::tempdir().expect("tempdir");
+    let wav = dir.path().join("swell.wav");
+    let out = dir.path().join("out");
+    let rate = 22_050;
+    // 2 s of the test signal, 1.5 s of digital silence, 1.5 s of it again: windows with and
+    // without signal.
+    let mut x = test_signal(seed, rate, 2, 2.0);
+    x.extend(std::iter::repeat_n(0.0, 2 * 33_075));
+    x.extend(test_signal(seed + 1, rate, 2, 1.5));
+    write_wav(&wav, &x, 2, rate, 32, true);
+    let (samples, channels, _) = read_wav(&wav);
+    let (frame_shares, reference) = engine_shares(&samples, channels, rate, 0.5);
+    let palette = Palette::default_palette();
+    let columns: Vec<String> = palette
+        .families()
+        .iter()
+        .map(|f| format!("share_{}", slug(&f.name)))
+        .collect();
+
+    let o = weft(&[
+        "analyze",
+        path_str(&wav),
+        "--out",
+        path_str(&out),
+        "--window",
+        "0.5",
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", text(&o.stderr));
+    let (header, rows) = read_csv(&out.join("swell.wav.timeline.csv"));
+    for c in columns
+        .iter()
+        .chain(["unexplained".to_owned(), "signal_frames".to_owned()].iter())
+    {
+        assert!(header.contains(c), "no column {c} in {header:?}");
+    }
+    assert_eq!(rows.len(), reference.len());
+    let mut silent = 0;
+    for (i, (row, (shares, unexplained, signal))) in rows.iter().zip(&reference).enumerate() {
+        let label = format!("seed {seed:#x} window {i}");
+        assert_eq!(row["signal_frames"] as usize, *signal, "{label}");
+        for (c, want) in columns.iter().zip(shares) {
+            assert!(
+                (row[c] - want).abs() < 1e-6,
+                "{label}: {c} {} vs {want}",
+                row[c]
+            );
+        }
+        assert!((row["unexplained"] - unexplained).abs() < 1e-6, "{label}");
+        let total: f64 = columns.iter().map(|c| row[c]).sum::<f64>() + row["unexplained"];
+        if *signal > 0 {
+            // Shares and unexplained sum to one (ARCHITECTURE.md's definition of a share).
+            assert!((total - 1.0).abs() < 1e-5, "{label}: sum {total}");
+        } else {
+            assert_eq!(total, 0.0, "{label}: a window without signal reads 0");
+            silent += 1;
+        }
+    }
+    assert!(
+        silent > 0,
+        "seed {seed:#x}: the silent stretch gives a window without signal"
+    );
+    // The table names the file's dominant families: the three highest mean shares over the
+    // frames with a signal, from the engine's frames.
+    let families = palette.families().len();
+    let mut mean = vec![0.0; families];
+    let signal: Vec<&Shares> = frame_shares.iter().filter(|s| s.signal).collect();
+    for s in &signal {
+        for (m, v) in mean.iter_mut().zip(&s.share[..families]) {
+            *m += f64::from(*v) / signal.len() as f64;
+        }
+    }
+    let top = (0..families)
+        .max_by(|&a, &b| mean[a].total_cmp(&mean[b]))
+        .expect("families");
+    let table = text(&o.stdout);
+    let expected = format!(
+        "{} {:.0} %",
+        palette.families()[top].name,
+        100.0 * mean[top]
+    );
+    assert!(
+        table.contains("dominant families") && table.contains(&expected),
+        "seed {seed:#x}: {expected:?} not in\n{table}"
+    );
+
+    // JSON lines: the same values under `shares` with `share_<slug>` keys.
+    let o = weft(&["analyze", path_str(&wav), "--window", "0.5", "--json", "-q"]);
+    assert_eq!(o.status.code(), Some(0));
+    let first: serde_json::Value =
+        serde_json::from_str(text(&o.stdout).lines().next().expect("a line")).expect("JSON");
+    let w1 = &first["windows"][1];
+    for (c, want) in columns.iter().zip(&reference[1].0) {
+        let got = w1["shares"][c].as_f64().expect("a share");
+        assert!((got - want).abs() < 1e-6, "{c}");
+    }
+    assert_eq!(
+        first["totals"]["shares"].as_object().expect("totals").len(),
+        families
+    );
+
+    // --frames: every frame's raw shares, keyed by family name, and its unexplained share.
+    let o = weft(&[
+        "analyze",
+        path_str(&wav),
+        "--frames",
+        "--live",
+        "--json",
+        "-q",
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", text(&o.stderr));
+    let lines: Vec<serde_json::Value> = text(&o.stdout)
+        .lines()
+        .map(|l| serde_json::from_str(l).expect("JSON line"))
+        .collect();
+    assert_eq!(lines.len(), frame_shares.len());
+    for (k, (line, s)) in lines.iter().zip(&frame_shares).enumerate() {
+        for (f, family) in palette.families().iter().enumerate() {
+            let got = line["shares"][&family.name].as_f64().expect("share") as f32;
+            assert_eq!(got, s.share[f], "seed {seed:#x} frame {k} {}", family.name);
+        }
+        assert_eq!(
+            line["unexplained"].as_f64().expect("unexplained") as f32,
+            s.unexplained
+        );
+    }
+    // The same frames as CSV name the shares `share_<slug>`.
+    let o = weft(&["analyze", path_str(&wav), "--frames", "--live", "-q"]);
+    let (header, rows) = parse_csv(&text(&o.stdout));
+    assert!(
+        header.contains(&"share_toms_hand_percussion".to_owned()),
+        "{header:?}"
+    );
+    assert_eq!(rows[40]["share_bass"] as f32, frame_shares[40].share[4]);
+    assert_eq!(palette.families()[4].name, "bass");
+
+    // --no-shares leaves them out.
+    let o = weft(&[
+        "analyze",
+        path_str(&wav),
+        "--no-shares",
+        "--out",
+        path_str(&out),
+        "-q",
+    ]);
+    assert_eq!(o.status.code(), Some(0));
+    let (header, _) = read_csv(&out.join("swell.wav.timeline.csv"));
+    assert!(
+        !header
+            .iter()
+            .any(|h| h.starts_with("share_") || h == "unexplained")
+    );
 }
 
 #[test]
@@ -896,23 +1110,61 @@ fn plots_are_written_per_file_and_as_an_overview() {
         "-q",
     ]);
     assert_eq!(o.status.code(), Some(0), "{}", text(&o.stderr));
-    // The overview: one 360-pixel panel per file.
+    // The overview: one 560-pixel panel (instrument mix over level) per file.
     assert_eq!(
         png_size(&std::fs::read(&overview).expect("png")),
-        (1200, 3 * 360)
+        (1200, 3 * 560)
     );
-    // One SVG per file with its title, both legend entries and minutes:seconds tick labels.
+    // One SVG per file with its title, the legends (every section of the palette, the
+    // unexplained share, both level lines) and minutes:seconds tick labels.
     let svg = std::fs::read_to_string(out.join("neon.wav.plot.svg")).expect("svg");
     assert!(svg.starts_with("<svg"), "an SVG document");
+    let palette = Palette::default_palette();
     for needle in [
-        "neon.wav",
+        "neon.wav — instrument mix",
+        "share of energy (%)",
+        "unexplained",
         "RMS per window (dBFS)",
         "peak per window (dBFS)",
         "time (m:ss)",
         "\n0:05\n",
-    ] {
+    ]
+    .into_iter()
+    .chain(palette.sections().iter().map(String::as_str))
+    {
         assert!(svg.contains(needle), "the plot lacks {needle:?}");
     }
+    assert!(
+        !svg.contains("driven guitar"),
+        "sections, not families, by default"
+    );
+    // Per family with --plot-by family; the level chart alone with --no-shares.
+    let by_family = dir.path().join("families.svg");
+    let level_only = dir.path().join("level.png");
+    for (dest, extra) in [
+        (&by_family, "--plot-by=family"),
+        (&level_only, "--no-shares"),
+    ] {
+        let o = weft(&[
+            "analyze",
+            path_str(&input.join("neon.wav")),
+            "--plot",
+            path_str(dest),
+            extra,
+            "-q",
+        ]);
+        assert_eq!(o.status.code(), Some(0), "{}", text(&o.stderr));
+    }
+    let svg = std::fs::read_to_string(&by_family).expect("svg");
+    for family in palette.families() {
+        // SVG text escapes '&' (toms & hand percussion).
+        let escaped = family.name.replace('&', "&amp;");
+        assert!(svg.contains(&escaped), "the legend lacks {}", family.name);
+    }
+    assert_eq!(
+        png_size(&std::fs::read(&level_only).expect("png")),
+        (1200, 360)
+    );
     // A single file's --plot is that file's plot, SVG by extension.
     let single = dir.path().join("one.svg");
     let o = weft(&[
