@@ -1,27 +1,34 @@
 //! `weft`: Weft's command-line tool for whole files and folders.
 //!
 //! `weft analyze FILE|DIR…` decodes every common audio format, runs the same engine as the plugin
-//! over each file, and writes per-window timelines (or per-frame rows), a summary table or JSON,
-//! and level plots. See `weft analyze --help` and the README's "Command line" section.
+//! over each file (family shares from the built-in palette or `--palette`, descriptors, and the
+//! closeness to a style model's category with `--style`), and writes per-window timelines (or
+//! per-frame rows), a summary table or JSON, and plots. `weft compare FILE --style MODEL` says how
+//! close one file sits to a category over time, why, and what lies outside the category's range.
+//! See `weft analyze --help`, `weft compare --help` and the README's "Command line" section.
 //!
-//! Exit status: 0 when every file was analysed, 1 when one or more files failed (each is named on
-//! standard error with its reason, and the others are still analysed), 2 for a usage error.
+//! Exit status of `analyze` and `compare`: 0 when every file was analysed, 1 when one or more
+//! files failed (each is named on standard error with its reason, and the others are still
+//! analysed), 2 for a usage error, 3 when the palette or style model file cannot be used.
 
 #![forbid(unsafe_code)]
 
 mod analyze;
+mod compare;
 mod decode;
+mod demo;
 mod palette;
 mod plot;
 mod report;
 mod resample;
+mod style;
 mod summary;
 mod timeline;
 
 use analyze::{AnalyzeOptions, BatchOutput, FramesMode};
 use anyhow::{Context, Result};
 use clap::{Args, Parser, Subcommand};
-use plot::{PlotFormat, PlotPanel};
+use plot::{PlotBy, PlotFormat, PlotPanel};
 use report::{RowFormat, RowWriter};
 use std::io::Write;
 use std::path::PathBuf;
@@ -31,7 +38,9 @@ use weft_engine::{AnalysisSettings, FrameConfig};
 const EXIT_CODES: &str = "Exit status:
   0  every file was analysed
   1  one or more files failed (each is named on standard error with the reason; the others were analysed)
-  2  usage error (bad option or option combination)";
+  2  usage error (bad option or option combination)
+  3  the palette or style model file cannot be used (unreadable, invalid, or trained on other
+     features; analyze and compare)";
 
 /// Shows what an arrangement is made of: audio files and folders in, timelines, summaries and
 /// plots out.
@@ -49,6 +58,14 @@ enum Command {
     Analyze(AnalyzeArgs),
     /// Build instrument palettes from recordings or a SoundFont, and measure them.
     Palette(palette::PaletteArgs),
+    /// Compare one file with a style model's category: closeness over time, the strongest
+    /// reasons, and what sits outside the category's typical range.
+    #[command(after_help = compare::EXIT_CODES)]
+    Compare(compare::CompareArgs),
+    /// Train style models (categories) from labelled tracks and check them on others.
+    Style(style::StyleArgs),
+    /// Build the Lantern Hall demo scene (invented data): pieces, a trained category, a set.
+    Demo(demo::DemoArgs),
 }
 
 #[derive(Args)]
@@ -104,7 +121,8 @@ struct AnalyzeArgs {
     #[arg(long, value_name = "HZ")]
     sample_rate: Option<u32>,
 
-    /// Write a plot (.svg or .png): one file's level timeline, or an overview with one panel per
+    /// Write a plot (.svg or .png): one file's timeline (the instrument mix as stacked areas,
+    /// the closeness over it with --style, the level below), or an overview with one panel per
     /// file for several files.
     #[arg(long, value_name = "FILE.svg|FILE.png")]
     plot: Option<PathBuf>,
@@ -116,6 +134,28 @@ struct AnalyzeArgs {
     /// Worker threads (default: one per core).
     #[arg(long, short = 'j', value_name = "N")]
     jobs: Option<usize>,
+
+    /// Palette file for the family shares (default: the built-in palette).
+    #[arg(long, value_name = "FILE", conflicts_with = "no_shares")]
+    palette: Option<PathBuf>,
+
+    /// Leave out the family shares (level and descriptors only; faster).
+    #[arg(long)]
+    no_shares: bool,
+
+    /// Style model file: adds the closeness to its category per window, in the summary and in
+    /// the plot. Needs the default framing (no --frame-size, --hop-size, --sample-rate, --frames).
+    #[arg(long, value_name = "MODEL", conflicts_with = "no_shares")]
+    style: Option<PathBuf>,
+
+    /// With --style: the category to measure closeness to (default: the model's category, its
+    /// first class that is not a catch-all such as "rest").
+    #[arg(long, value_name = "NAME", requires = "style")]
+    category: Option<String>,
+
+    /// How plots stack the shares: one area per section or per family.
+    #[arg(long, value_enum, value_name = "BY", default_value_t = PlotBy::Section)]
+    plot_by: PlotBy,
 
     /// No progress bar and no closing throughput line.
     #[arg(long, short = 'q')]
@@ -135,6 +175,19 @@ fn main() -> ExitCode {
         }
     };
     match cli.command {
+        Command::Style(args) => ExitCode::from(style::run(args)),
+        Command::Demo(args) => match demo::run(&args) {
+            Ok(()) => ExitCode::SUCCESS,
+            Err(err) => {
+                if let Some(u) = err.downcast_ref::<style::UsageError>() {
+                    eprintln!("weft: usage error: {u}");
+                    ExitCode::from(2)
+                } else {
+                    eprintln!("weft: {err:#}");
+                    ExitCode::from(1)
+                }
+            }
+        },
         Command::Palette(args) => match palette::run(args) {
             Ok(()) => ExitCode::SUCCESS,
             Err(err) => {
@@ -142,23 +195,37 @@ fn main() -> ExitCode {
                 ExitCode::from(1)
             }
         },
-        Command::Analyze(args) => match analyze(args) {
-            Ok(code) => code,
-            Err(Failure::Usage(Usage(message))) => {
-                eprintln!("weft: usage error: {message}");
-                ExitCode::from(2)
-            }
-            Err(Failure::Other(err)) => {
-                eprintln!("weft: {err:#}");
-                ExitCode::from(1)
-            }
-        },
+        Command::Analyze(args) => report_failure(analyze(args)),
+        Command::Compare(args) => report_failure(compare::run(&args)),
     }
 }
 
+/// Why `analyze` or `compare` stopped, with its exit status.
 enum Failure {
+    /// Exit 2.
     Usage(Usage),
+    /// A palette or style model that cannot be used: exit 3.
+    Model(anyhow::Error),
+    /// Anything else: exit 1.
     Other(anyhow::Error),
+}
+
+fn report_failure(outcome: Result<ExitCode, Failure>) -> ExitCode {
+    match outcome {
+        Ok(code) => code,
+        Err(Failure::Usage(Usage(message))) => {
+            eprintln!("weft: usage error: {message}");
+            ExitCode::from(2)
+        }
+        Err(Failure::Model(err)) => {
+            eprintln!("weft: {err:#}");
+            ExitCode::from(3)
+        }
+        Err(Failure::Other(err)) => {
+            eprintln!("weft: {err:#}");
+            ExitCode::from(1)
+        }
+    }
 }
 
 impl From<anyhow::Error> for Failure {
@@ -197,6 +264,30 @@ fn analyze(args: AnalyzeArgs) -> Result<ExitCode, Failure> {
             plot.display()
         )));
     }
+    if args.style.is_some() {
+        let clash = [
+            (args.frames, "--frames"),
+            (args.frame_size.is_some(), "--frame-size"),
+            (args.sample_rate.is_some(), "--sample-rate"),
+        ];
+        if let Some((_, option)) = clash.iter().find(|(set, _)| *set) {
+            return Err(usage(format!(
+                "--style cannot be combined with {option}: style models read windows of the default framing"
+            )));
+        }
+    }
+    let palette = if args.no_shares {
+        None
+    } else {
+        Some(analyze::load_palette(args.palette.as_deref()).map_err(Failure::Model)?)
+    };
+    let style = match (&args.style, &palette) {
+        (Some(path), Some(palette)) => Some(std::sync::Arc::new(
+            analyze::StyleTarget::load(path, palette, args.category.as_deref())
+                .map_err(Failure::Model)?,
+        )),
+        _ => None,
+    };
     let jobs = match args.jobs {
         Some(0) => return Err(usage("--jobs must be at least 1")),
         Some(n) => n,
@@ -230,11 +321,15 @@ fn analyze(args: AnalyzeArgs) -> Result<ExitCode, Failure> {
             (true, false) => FramesMode::WholeClip,
             (true, true) => FramesMode::Live,
         },
+        palette,
+        style_windows: None,
+        style: style.clone(),
     };
     let output = BatchOutput {
         out_dir: args.out.clone(),
         row_format,
         plots: args.plots,
+        plot_by: args.plot_by,
         quiet: args.quiet,
         threads: jobs,
     };
@@ -246,18 +341,18 @@ fn analyze(args: AnalyzeArgs) -> Result<ExitCode, Failure> {
     };
 
     let mut plot_failed = false;
+    let category = style.as_deref().map(analyze::StyleTarget::category_name);
     if let Some(dest) = &args.plot {
         let panels: Vec<PlotPanel<'_>> = batch
             .results
             .iter()
             .filter_map(|(path, r)| r.as_ref().ok().map(|r| (path, r)))
-            .map(|(path, r)| PlotPanel {
-                title: path.file_name().map_or_else(
+            .map(|(path, r)| {
+                let title = path.file_name().map_or_else(
                     || path.display().to_string(),
                     |n| n.to_string_lossy().into_owned(),
-                ),
-                duration_s: r.duration_s,
-                windows: &r.windows,
+                );
+                PlotPanel::of(title, r, category)
             })
             .collect();
         if panels.is_empty() {
@@ -275,7 +370,7 @@ fn analyze(args: AnalyzeArgs) -> Result<ExitCode, Failure> {
                     panels.len()
                 );
             }
-            if let Err(err) = plot::write_plot(dest, &panels) {
+            if let Err(err) = plot::write_plot(dest, &panels, args.plot_by) {
                 eprintln!("weft: {}: the plot failed: {err:#}", dest.display());
                 plot_failed = true;
             }
@@ -287,7 +382,7 @@ fn analyze(args: AnalyzeArgs) -> Result<ExitCode, Failure> {
     let mut out = stdout.lock();
     let write_result = (|| -> Result<()> {
         if args.json && !frames_to_stdout {
-            for line in summary::json_lines(&batch)? {
+            for line in summary::json_lines(&batch, style.as_deref())? {
                 writeln!(out, "{line}")?;
             }
             writeln!(
