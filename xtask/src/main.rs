@@ -6,7 +6,7 @@
 //! - `test`: setup, bundle, every test, the VST3 scan and the panel screenshot check;
 //! - `live`: the standalone program on the default audio input, or on a demo signal through a
 //!   dummy JACK server when the machine has no audio input;
-//! - `shot [--out FILE]`: renders the panel under Xvfb, fed with a test signal, into a PNG.
+//! - `shot [--out DIR]`: renders every panel view under Xvfb, fed with audio, into PNGs.
 
 #![forbid(unsafe_code)]
 
@@ -16,6 +16,7 @@ mod palette;
 mod setup;
 mod shot;
 mod signal;
+mod soak;
 mod testrun;
 
 use anyhow::{Context, Result, bail};
@@ -29,9 +30,11 @@ usage: cargo xtask <task>
   setup [--check]           install what this machine lacks (--check: only report)
   test                      set up, bundle, and run every test
   live                      run the standalone panel on the default input (or a demo signal)
-  shot [--out FILE]         render the panel under Xvfb into a PNG (default shots/panel.png)
+  shot [--out DIR]          render every panel view under Xvfb into PNGs (default shots/)
   bench-timbre              time the timbre descriptors against librosa on a 3-minute file
   palette [--check]         regenerate the built-in palette from FluidR3_GM and espeak-ng
+  soak [--short]            the plugin in the test host: 2 h offline + 10 min real time
+                            (--short: 5 min + 20 s, the CI form)
 ";
 
 fn main() -> Result<()> {
@@ -49,6 +52,7 @@ fn main() -> Result<()> {
         "shot" => shot::run(&shot::Options::parse(&rest)?),
         "bench-timbre" => bench_timbre::run(),
         "palette" => palette::run(&rest),
+        "soak" => soak::run(&rest),
         "" | "help" | "--help" | "-h" => {
             print!("{USAGE}");
             Ok(())

@@ -4,9 +4,10 @@
 //! 2. the debug plugin bundle (nice-plug's `assert_process_allocs` is on in debug builds, so an
 //!    allocation on the audio thread aborts the host tests);
 //! 3. every cargo test in the workspace, the CLAP host grid and the VST3 scan among them;
-//! 4. the panel screenshot check.
+//! 4. the panel screenshots of every view (with the demo scene and its style model);
+//! 5. the soak in its short form (`cargo xtask soak --short`).
 
-use crate::{bundle, setup, shot};
+use crate::{bundle, setup, shot, soak};
 use anyhow::{Context, Result, bail};
 use std::io::{BufRead, BufReader};
 use std::process::{Command, Stdio};
@@ -63,6 +64,14 @@ pub fn run() -> Result<()> {
         counts.passed += 1;
     } else {
         counts.failed += 1;
+    }
+    // The soak in its short form (the full one is `cargo xtask soak`).
+    match soak::run(&["--short".to_owned()]) {
+        Ok(()) => counts.passed += 1,
+        Err(err) => {
+            eprintln!("xtask: the short soak failed: {err:#}");
+            counts.failed += 1;
+        }
     }
     // The closing line CI reads.
     println!("tests: {} passed, {} failed", counts.passed, counts.failed);
