@@ -379,14 +379,14 @@ impl Windower {
 /// [`crate::style::Reason::relation_to_category`]). Unknown names fall back to the name itself.
 #[must_use]
 pub fn phrase(feature: &str, relation: Relation) -> String {
-    let above = match relation {
-        Relation::Above => true,
-        Relation::Below => false,
-        Relation::Level => return format!("{} as in the category", readable(feature)),
-    };
     let (value, stat) = match feature.rsplit_once('_') {
         Some((v, s @ ("mean" | "sd"))) => (v, s),
         _ => (feature, "mean"),
+    };
+    let above = match relation {
+        Relation::Above => true,
+        Relation::Below => false,
+        Relation::Level => return format!("{} as in the category", readable(value)),
     };
     if stat == "sd" {
         let what = readable(value);
@@ -684,6 +684,10 @@ mod tests {
             "steadier onset activity than the category"
         );
         assert!(phrase("contrast_db_3_mean", Relation::Above).contains("400–800 Hz"));
+        assert_eq!(
+            phrase("centroid_hz_mean", Relation::Level),
+            "brightness as in the category"
+        );
         assert_eq!(slug("Toms & hand percussion"), "toms_hand_percussion");
     }
 }

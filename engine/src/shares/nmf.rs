@@ -185,17 +185,20 @@ impl ActivationSolver {
 
 #[inline]
 fn dot(a: &[f32], b: &[f32]) -> f32 {
-    // Four partial sums let the compiler vectorise without reassociating a single sum.
-    let mut s = [0.0_f32; 4];
-    let chunks = a.len() / 4;
-    for i in 0..chunks {
-        for j in 0..4 {
-            s[j] += a[4 * i + j] * b[4 * i + j];
+    // Sixteen partial sums: several vector registers of independent sums, so the loop is not
+    // bound by one add chain's latency (the compiler vectorises without reassociating a sum).
+    const LANES: usize = 16;
+    let mut s = [0.0_f32; LANES];
+    let mut ac = a.chunks_exact(LANES);
+    let mut bc = b.chunks_exact(LANES);
+    for (x, y) in (&mut ac).zip(&mut bc) {
+        for j in 0..LANES {
+            s[j] += x[j] * y[j];
         }
     }
-    let mut t = s[0] + s[1] + s[2] + s[3];
-    for i in chunks * 4..a.len() {
-        t += a[i] * b[i];
+    let mut t = s.iter().sum::<f32>();
+    for (x, y) in ac.remainder().iter().zip(bc.remainder()) {
+        t += x * y;
     }
     t
 }
