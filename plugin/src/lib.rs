@@ -28,7 +28,7 @@ use std::sync::{Arc, RwLock};
 use weft_engine::AnalysisSettings;
 
 /// The panel's size when first opened, logical pixels.
-pub const PANEL_SIZE: (u32, u32) = (1000, 700);
+pub const PANEL_SIZE: (u32, u32) = (1000, 740);
 
 /// Weft's parameters and persisted settings.
 #[derive(Params)]

@@ -27,6 +27,8 @@ use weft_engine::windows::phrase;
 
 /// The meter's scale, dBFS.
 const METER_RANGE_DB: (f32, f32) = (-72.0, 0.0);
+/// Height of the instrument mix's list, logical pixels (it scrolls beyond).
+const MIX_VIEW_HEIGHT: f32 = 400.0;
 /// Shares below this are drawn dimmed as absent.
 const ABSENT_SHARE: f32 = 0.005;
 /// Environment variable for tests of a slow panel: a pause, ms, in every frame.
@@ -244,7 +246,13 @@ impl NiceEguiApp for Panel {
                             ui.add_space(6.0);
                         }
                         ui.columns(2, |cols| {
-                            card(&mut cols[0], "Instrument mix", |ui| self.mix_view(ui));
+                            card(&mut cols[0], "Instrument mix", |ui| {
+                                // A fixed height keeps the layout still when sections open.
+                                egui::ScrollArea::vertical()
+                                    .id_salt("mix")
+                                    .max_height(MIX_VIEW_HEIGHT)
+                                    .show(ui, |ui| self.mix_view(ui));
+                            });
                             card(&mut cols[1], "Style", |ui| {
                                 style_view(ui, &self.snap, &self.history, settings.history_span_s);
                             });
@@ -642,7 +650,16 @@ fn share_row(
         let label = egui::Label::new(RichText::new(name).size(size).color(text_colour))
             .truncate()
             .sense(sense);
-        let response = ui.add_sized(vec2(name_w, size + 6.0), label);
+        let response = ui
+            .allocate_ui_with_layout(
+                vec2(name_w, size + 6.0),
+                egui::Layout::left_to_right(egui::Align::Center),
+                |ui| {
+                    ui.set_min_width(name_w);
+                    ui.add(label)
+                },
+            )
+            .inner;
         clicked = opener.is_some() && (response.clicked() || mark_response.clicked());
         let bar_w = (ui.available_width() - pct_w - 8.0).max(20.0);
         let (rect, _) = ui.allocate_exact_size(vec2(bar_w, size), Sense::hover());
@@ -670,7 +687,7 @@ fn share_row(
 /// Drawn as one mesh, so ten minutes of history cost a few thousand quads.
 fn history_strip(ui: &mut egui::Ui, history: &MixHistory, span_s: u32, by_family: bool) {
     let labels = &history.labels;
-    let height = 150.0;
+    let height = 100.0;
     let (rect, _) = ui.allocate_exact_size(vec2(ui.available_width(), height), Sense::hover());
     let painter = ui.painter_at(rect);
     painter.rect_filled(rect, CornerRadius::same(3), colours::TRACK);
@@ -1023,7 +1040,7 @@ fn reading(ui: &mut egui::Ui, name: &str, db: f32, colour: Color32) {
 fn level_trace(ui: &mut egui::Ui, snap: &Snapshot) {
     let history: Vec<f32> = snap.history().iter().map(|c| c.rms_db).collect();
     let history = &history[..];
-    let size = Vec2::new(ui.available_width(), 70.0);
+    let size = Vec2::new(ui.available_width(), 40.0);
     let (rect, _) = ui.allocate_exact_size(size, Sense::hover());
     let painter = ui.painter_at(rect);
     painter.rect_filled(rect, CornerRadius::same(3), colours::TRACK);

@@ -130,10 +130,22 @@ pub fn weft_inputs(timeout: Duration) -> Result<Vec<String>> {
 
 /// Plays `wav` with jack-play and connects it to `inputs`.
 pub fn play_into(wav: &Path, inputs: &[String]) -> Result<Guarded> {
+    play_from(wav, 0.0, inputs)
+}
+
+/// Plays `wav` from `start_s` seconds on (jack-play resamples to the server's rate) and
+/// connects its outputs to `inputs` (a mono file feeds every input).
+pub fn play_from(wav: &Path, start_s: f64, inputs: &[String]) -> Result<Guarded> {
+    let spec = hound::WavReader::open(wav)
+        .with_context(|| format!("cannot read {}", wav.display()))?
+        .spec();
+    let channels = usize::from(spec.channels.max(1));
+    let seek = (start_s.max(0.0) * f64::from(spec.sample_rate)).round() as u64;
     let before = jack_ports("jack-play");
     let player = Guarded::spawn(
         "jack-play",
         Command::new("jack-play")
+            .args(["-i", &seek.to_string()])
             .arg(wav)
             .stdout(Stdio::null())
             .stderr(Stdio::null()),
@@ -144,7 +156,7 @@ pub fn play_into(wav: &Path, inputs: &[String]) -> Result<Guarded> {
             .into_iter()
             .filter(|p| !before.contains(p))
             .collect();
-        if outs.len() >= 2 {
+        if outs.len() >= channels.min(2) {
             break outs;
         }
         if start.elapsed() > Duration::from_secs(10) {

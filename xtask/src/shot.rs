@@ -1,5 +1,6 @@
-//! `cargo xtask shot`: every view of the panel rendered under Xvfb, fed with a Lantern Hall demo
-//! piece (or the test signal), saved as PNGs in `shots/`.
+//! `cargo xtask shot`: every view of the panel rendered under Xvfb, fed with Lantern Hall demo
+//! music (`weft demo`, invented data) and the *dockside* style model trained on it, saved as PNGs
+//! in `shots/`.
 //!
 //! The standalone program runs on a dummy JACK server with the audio playing into it, once per
 //! view. After a few seconds the screen is captured, and what the analysis thread and the panel
@@ -8,8 +9,8 @@
 //! picture must not be blank. The last view starts with ten minutes of invented history and
 //! reports the panel's frame time with the history full.
 
-use crate::live::{Guarded, play_into, start_dummy_jack, start_standalone, weft_inputs};
-use crate::{build_standalone, run_checked, signal};
+use crate::live::{Guarded, play_from, start_dummy_jack, start_standalone, weft_inputs};
+use crate::{build_standalone, run_checked};
 use anyhow::{Context, Result, bail};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
@@ -23,10 +24,22 @@ pub struct Options {
     pub out_dir: PathBuf,
     /// Seconds of audio before each capture.
     pub seconds: f64,
-    /// The audio to play (48 kHz WAV); `None`: the generated test signal.
+    /// The audio to play in every view (WAV); `None`: the demo scene's music per view.
     pub audio: Option<PathBuf>,
-    /// A style model for the panel to load.
+    /// A style model for the panel to load; `None`: the demo scene's (when the scene is used).
     pub model: Option<PathBuf>,
+}
+
+/// Where the shots' demo scene is built (`weft demo --pieces 4`).
+const SCENE_DIR: &str = "target/shot-demo";
+
+/// What a view plays: a file of the demo scene and where in it to start.
+#[derive(Clone, Copy)]
+enum Play {
+    /// The first dockside piece.
+    Dockside,
+    /// The demo set from this second on.
+    Set(f64),
 }
 
 impl Default for Options {
@@ -82,6 +95,8 @@ struct View {
     panel_view: &'static str,
     /// Start with ten minutes of invented history and report the frame time.
     full_history: bool,
+    /// The scene's audio for this view.
+    play: Play,
 }
 
 const VIEWS: [View; 4] = [
@@ -90,37 +105,42 @@ const VIEWS: [View; 4] = [
         file: "panel.png",
         panel_view: "",
         full_history: false,
+        play: Play::Dockside,
     },
     View {
         what: "every section open to its families, history stacked by family",
         file: "panel-families.png",
         panel_view: "families,family-history",
         full_history: false,
+        play: Play::Set(0.0),
     },
     View {
         what: "files and set log open, a set log recording",
         file: "panel-setup.png",
         panel_view: "setup,record",
         full_history: false,
+        play: Play::Set(0.0),
     },
     View {
         what: "ten minutes of history (frame-time measurement)",
         file: "panel-full-history.png",
         panel_view: "",
         full_history: true,
+        play: Play::Set(0.0),
     },
 ];
 
 /// Renders every view and checks what each showed.
 pub fn run(options: &Options) -> Result<()> {
     let binary = build_standalone(false)?;
-    let audio = match &options.audio {
-        Some(path) => path.clone(),
-        None => {
-            signal::write_demo_wav(Path::new(crate::live::DEMO_WAV), 60.0)?;
-            PathBuf::from(crate::live::DEMO_WAV)
-        }
+    let scene = match &options.audio {
+        Some(_) => None,
+        None => Some(demo_scene()?),
     };
+    let model = options
+        .model
+        .clone()
+        .or_else(|| scene.as_ref().map(|s| s.model.clone()));
     std::fs::create_dir_all(&options.out_dir)?;
     let _xvfb = Guarded::spawn(
         "Xvfb",
@@ -140,7 +160,7 @@ pub fn run(options: &Options) -> Result<()> {
             ("WEFT_PANEL_VIEW", view.panel_view.to_owned()),
             ("WEFT_SET_LOG_DIR", log_dir.display().to_string()),
         ];
-        if let Some(model) = &options.model {
+        if let Some(model) = &model {
             env.push(("WEFT_STYLE_MODEL", model.display().to_string()));
         }
         if view.full_history {
@@ -148,7 +168,15 @@ pub fn run(options: &Options) -> Result<()> {
         }
         let mut app = start_standalone(&binary, Some(&snapshot_dir), Some(DISPLAY), &env)?;
         let inputs = weft_inputs(Duration::from_secs(60))?;
-        let mut player = play_into(&audio, &inputs)?;
+        let (audio, start_s) = match (&options.audio, &scene) {
+            (Some(audio), _) => (audio.clone(), 0.0),
+            (None, Some(scene)) => match view.play {
+                Play::Dockside => (scene.dockside.clone(), 0.0),
+                Play::Set(s) => (scene.set.clone(), s),
+            },
+            (None, None) => bail!("no audio to play"),
+        };
+        let mut player = play_from(&audio, start_s, &inputs)?;
         sleep(Duration::from_secs_f64(options.seconds));
         let out = options.out_dir.join(view.file);
         run_checked(
@@ -163,7 +191,7 @@ pub fn run(options: &Options) -> Result<()> {
         app.stop(Duration::from_secs(1));
         player.stop(Duration::from_secs(1));
         check_picture(&out)?;
-        check_snapshot(&snapshot_dir, options.model.is_some())?;
+        check_snapshot(&snapshot_dir, model.is_some())?;
         let timing = check_panel(&snapshot_dir, view)?;
         println!("shot: wrote {} ({}){timing}", out.display(), view.what);
     }
@@ -171,8 +199,48 @@ pub fn run(options: &Options) -> Result<()> {
     Ok(())
 }
 
+/// The demo scene's files the shots use.
+struct Scene {
+    set: PathBuf,
+    dockside: PathBuf,
+    model: PathBuf,
+}
+
+/// Builds the Lantern Hall demo scene with four pieces per style (invented music, seeded), or
+/// reuses one built before.
+fn demo_scene() -> Result<Scene> {
+    let dir = PathBuf::from(SCENE_DIR);
+    let scene = Scene {
+        set: dir.join("set/lantern-hall-set.wav"),
+        dockside: dir.join("pieces/dockside/dockside-01.wav"),
+        model: dir.join("dockside.weftstyle"),
+    };
+    if scene.set.exists() && scene.dockside.exists() && scene.model.exists() {
+        return Ok(scene);
+    }
+    println!("shot: building the Lantern Hall demo scene in {SCENE_DIR} (weft demo --pieces 4)");
+    run_checked(Command::new("cargo").args(["build", "-q", "-p", "weft"]))?;
+    let out = Command::new("target/debug/weft")
+        .args(["demo", "--pieces", "4", "--json", "--dir", SCENE_DIR])
+        .stdout(Stdio::piped())
+        .output()
+        .context("cannot run weft demo")?;
+    if !out.status.success() {
+        bail!(
+            "weft demo failed: {}",
+            String::from_utf8_lossy(&out.stderr).trim()
+        );
+    }
+    for file in [&scene.set, &scene.dockside, &scene.model] {
+        if !file.exists() {
+            bail!("weft demo did not write {}", file.display());
+        }
+    }
+    Ok(scene)
+}
+
 /// The panel's logical size (the standalone opens it at scale 1; `weft_plugin::PANEL_SIZE`).
-const PANEL_SIZE: (u32, u32) = (1000, 700);
+const PANEL_SIZE: (u32, u32) = (1000, 740);
 
 /// Fails when the picture is one flat colour (nothing was drawn).
 fn check_picture(png: &Path) -> Result<()> {
