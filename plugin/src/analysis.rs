@@ -1026,4 +1026,63 @@ mod tests {
         drop(guard);
         run.thread.stop().expect("thread ended cleanly");
     }
+
+    #[test]
+    fn palette_and_style_model_swap_during_playback() {
+        let dir = temp_dir("hot-swap");
+        let model = dir.join("bright.weftstyle");
+        train_model(&model);
+        // The built-in palette's content, from a file: the model stays valid after the swap.
+        let palette_file = dir.join("copy.weftpal");
+        std::fs::write(&palette_file, Palette::default_palette().to_bytes()).expect("write");
+        let controls = Arc::new(Controls::default());
+        let mut run = start(controls.clone(), true, 1 << 16);
+        let push = |run: &mut Run, seconds: f64, seed: u64| {
+            let mut x = clip(true, seed, seconds);
+            for block in x.chunks_mut(512) {
+                run.audio.push_block(&[block], true);
+            }
+        };
+        let settle = || std::thread::sleep(Duration::from_secs_f64(3.0 * CONTROL_EVERY_S));
+        push(&mut run, 2.0, 1);
+        settle();
+        assert!(run.feed.read().labels.style.is_none());
+        controls.update(|s| s.style_path = Some(model.display().to_string()));
+        settle();
+        push(&mut run, 5.0, 2);
+        settle();
+        let snap = run.feed.read().clone();
+        assert!(
+            snap.labels.style.is_some(),
+            "{:?}",
+            snap.labels.style_problem
+        );
+        let windows_before = snap.style.windows;
+        assert!(windows_before >= 2, "{windows_before} windows");
+        controls.update(|s| s.palette_path = Some(palette_file.display().to_string()));
+        settle();
+        push(&mut run, 5.0, 3);
+        settle();
+        let snap = run.feed.read().clone();
+        assert_eq!(snap.labels.palette_path.as_deref(), palette_file.to_str());
+        assert!(snap.labels.palette_problem.is_none());
+        assert!(
+            snap.labels.style.is_some(),
+            "{:?}",
+            snap.labels.style_problem
+        );
+        assert!(
+            snap.style.windows >= 2,
+            "estimates go on after the palette swap"
+        );
+        assert!(snap.mix.updates > 20);
+        controls.update(|s| s.style_path = None);
+        settle();
+        push(&mut run, 1.0, 4);
+        run.thread.stop().expect("thread ended cleanly");
+        let snap = run.feed.read().clone();
+        assert!(snap.labels.style.is_none() && snap.labels.style_problem.is_none());
+        assert_eq!(snap.samples_dropped, 0);
+        let _ = std::fs::remove_dir_all(&dir);
+    }
 }
