@@ -278,12 +278,14 @@ pub fn run(a: &DemoArgs) -> Result<()> {
         .with_context(|| format!("cannot write {}", model_file.display()))?;
     let cv_table = style::cv_text(&set, &trained);
     if !a.json {
-        print!("{cv_table}");
-        println!(
+        let mut out = std::io::stdout().lock();
+        write!(out, "{cv_table}")?;
+        writeln!(
+            out,
             "\nwrote {} ({} model)",
             model_file.display(),
             trained.model.kind()
-        );
+        )?;
     }
 
     // 3. The set.
@@ -358,24 +360,34 @@ pub fn run(a: &DemoArgs) -> Result<()> {
             train: TrainJson::of(&set, &trained, Some(CATEGORY.to_owned()), &model_file),
             seconds: timings,
         };
-        println!("{}", serde_json::to_string(&json)?);
+        writeln!(
+            std::io::stdout().lock(),
+            "{}",
+            serde_json::to_string(&json)?
+        )?;
     } else {
-        println!("\nThe demo set (closeness to {CATEGORY}, mean over each piece's windows):");
+        let mut out = std::io::stdout().lock();
+        writeln!(
+            out,
+            "\nThe demo set (closeness to {CATEGORY}, mean over each piece's windows):"
+        )?;
         for p in &set_summary {
-            println!(
+            writeln!(
+                out,
                 "  {:>6} – {:>6}  {:>6.1} %  {}",
                 crate::plot::clock(p.start_s),
                 crate::plot::clock(p.end_s),
                 100.0 * p.mean_closeness,
                 p.title
-            );
+            )?;
         }
-        println!(
+        writeln!(
+            out,
             "\nwrote {} and {} ({:.0} s in all)",
             report_file.display(),
             a.dir.join("closeness.png").display(),
             timings.total
-        );
+        )?;
     }
     std::io::stdout().flush()?;
     Ok(())

@@ -178,6 +178,15 @@ fn main() -> ExitCode {
         Command::Style(args) => ExitCode::from(style::run(args)),
         Command::Demo(args) => match demo::run(&args) {
             Ok(()) => ExitCode::SUCCESS,
+            // A closed pipe (`weft demo | head`) is not a failure.
+            Err(err)
+                if err.chain().any(|e| {
+                    e.downcast_ref::<std::io::Error>()
+                        .is_some_and(|e| e.kind() == std::io::ErrorKind::BrokenPipe)
+                }) =>
+            {
+                ExitCode::SUCCESS
+            }
             Err(err) => {
                 if let Some(u) = err.downcast_ref::<style::UsageError>() {
                     eprintln!("weft: usage error: {u}");
