@@ -14,10 +14,8 @@ use std::process::{Command, Output};
 use std::sync::OnceLock;
 use weft_engine::evaluation::{cross_validate, default_folds};
 use weft_engine::palette::Palette;
-use weft_engine::shares::SharesSettings;
 use weft_engine::style::{FeatureMatrix, LabelledWindows, ModelKind, ModelParams, StyleModel};
-use weft_engine::windows::{WindowSpec, Windower, schema};
-use weft_engine::{AnalysisSettings, Analyzer};
+use weft_engine::windows::{WindowSpec, clip_windows, schema};
 
 const RATE_HZ: u32 = 22_050;
 
@@ -88,30 +86,11 @@ fn read_mono_wav(path: &Path) -> Vec<f32> {
 /// samples, side = 0, streamed with the default framing at the file's rate and the built-in
 /// palette; (start_s, end_s, features).
 fn engine_windows(x: &[f32], spec: WindowSpec) -> Vec<(f64, f64, Vec<f64>)> {
-    let palette = Palette::default_palette();
-    let settings = AnalysisSettings::for_sample_rate(f64::from(RATE_HZ)).expect("settings");
-    let mut analyzer =
-        Analyzer::with_palette(settings, &palette, SharesSettings::default()).expect("analyzer");
-    let mut windower =
-        Windower::new(spec, f64::from(RATE_HZ), settings.framing, &palette).expect("windower");
-    let mut out = Vec::new();
-    let zeros = vec![0.0; 4096];
-    for chunk in x.chunks(4096) {
-        analyzer.process(chunk, Some(&zeros[..chunk.len()]), |f| {
-            if let Some(w) = windower.push(f) {
-                out.push((w.start_s, w.end_s, w.features.to_vec()));
-            }
-        });
-    }
-    analyzer.finish(|f| {
-        if let Some(w) = windower.push(f) {
-            out.push((w.start_s, w.end_s, w.features.to_vec()));
-        }
-    });
-    if let Some(w) = windower.finish() {
-        out.push((w.start_s, w.end_s, w.features.to_vec()));
-    }
-    out
+    clip_windows(&Palette::default_palette(), spec, f64::from(RATE_HZ), x)
+        .expect("windows")
+        .into_iter()
+        .map(|w| (w.start_s, w.end_s, w.features))
+        .collect()
 }
 
 /// The seed of the trained model (shared by the tests: training is the slow part).

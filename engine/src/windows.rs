@@ -15,9 +15,10 @@
 //! Feature names carry their unit and statistic, e.g. `centroid_hz_mean`, `share_bass_sd`;
 //! [`phrase`] turns a feature and its side of the category into words for a musician.
 
-use crate::analyzer::FrameResult;
+use crate::analyzer::{AnalysisSettings, Analyzer, FrameResult, SettingsError};
 use crate::frames::FrameConfig;
 use crate::palette::Palette;
+use crate::shares::{SharesError, SharesSettings};
 use crate::style::{FeatureSchema, Relation, StyleError};
 use crate::timbre::{N_CONTRAST, N_MFCC};
 use thiserror::Error;
@@ -78,6 +79,12 @@ pub enum WindowError {
     /// The schema could not be built (e.g. two families with the same name).
     #[error("the palette's family names do not make a valid schema")]
     Schema(#[from] StyleError),
+    /// The analysis cannot run at this sample rate.
+    #[error("the analysis cannot run at this sample rate")]
+    Settings(#[from] SettingsError),
+    /// The palette cannot be used at this sample rate.
+    #[error("the palette cannot be used at this sample rate")]
+    Shares(#[from] SharesError),
 }
 
 impl WindowSpec {
@@ -371,6 +378,60 @@ impl Windower {
     /// Time between frames, seconds.
     pub fn frame_period_s(&self) -> f64 {
         self.hop_s
+    }
+}
+
+/// The windows of a whole clip held in memory (mono, or the mid signal), as the live analysis
+/// and `weft` compute them: the engine's default framing at `sample_rate_hz`, `palette`'s
+/// shares, every window of `spec` and, for a clip shorter than one window, the one partial
+/// window. For training and checking categories from audio already in memory. Allocates.
+///
+/// # Errors
+/// [`WindowError`] for a bad spec or a rate the analysis or the palette cannot use.
+pub fn clip_windows(
+    palette: &Palette,
+    spec: WindowSpec,
+    sample_rate_hz: f64,
+    mid: &[f32],
+) -> Result<Vec<OwnedWindow>, WindowError> {
+    let settings = AnalysisSettings::for_sample_rate(sample_rate_hz)?;
+    let mut analyzer = Analyzer::with_palette(settings, palette, SharesSettings::default())?;
+    let mut windower = Windower::new(spec, sample_rate_hz, settings.framing, palette)?;
+    let mut out = Vec::new();
+    let mut take = |f: &FrameResult| {
+        if let Some(w) = windower.push(f) {
+            out.push(OwnedWindow::from(w));
+        }
+    };
+    analyzer.process(mid, None, &mut take);
+    analyzer.finish(&mut take);
+    if let Some(w) = windower.finish() {
+        out.push(OwnedWindow::from(w));
+    }
+    Ok(out)
+}
+
+/// A window's features, owned (what [`clip_windows`] returns).
+#[derive(Debug, Clone, PartialEq)]
+pub struct OwnedWindow {
+    /// Centre time of the window's first frame, seconds.
+    pub start_s: f64,
+    /// Centre time of its last frame, seconds.
+    pub end_s: f64,
+    /// Frames summarised.
+    pub frames: usize,
+    /// The features, in [`schema`] order.
+    pub features: Vec<f64>,
+}
+
+impl From<WindowStats<'_>> for OwnedWindow {
+    fn from(w: WindowStats<'_>) -> Self {
+        Self {
+            start_s: w.start_s,
+            end_s: w.end_s,
+            frames: w.frames,
+            features: w.features.to_vec(),
+        }
     }
 }
 

@@ -831,18 +831,12 @@ mod tests {
         let (mut rows, mut labels, mut tracks) = (Vec::new(), Vec::new(), Vec::new());
         for track in 0..8 {
             let bright = track % 2 == 0;
-            let mut analyzer =
-                Analyzer::with_palette(settings(), &palette, SharesSettings::default())
-                    .expect("palette");
-            let mut w = Windower::new(spec, SR, settings().framing, &palette).expect("spec");
             let x = clip(bright, 100 + track as u64, 5.0);
-            analyzer.process(&x, None, |f| {
-                if let Some(win) = w.push(f) {
-                    rows.push(win.features.to_vec());
-                    labels.push(usize::from(!bright));
-                    tracks.push(track);
-                }
-            });
+            for w in windows::clip_windows(&palette, spec, SR, &x).expect("windows") {
+                rows.push(w.features);
+                labels.push(usize::from(!bright));
+                tracks.push(track);
+            }
         }
         let schema = windows::schema(spec, &palette).expect("schema");
         let data = LabelledWindows::new(

@@ -6,10 +6,8 @@
 use std::path::{Path, PathBuf};
 use weft_engine::evaluation;
 use weft_engine::palette::Palette;
-use weft_engine::shares::SharesSettings;
 use weft_engine::style::{FeatureMatrix, LabelledWindows, ModelKind, ModelParams, StyleModel};
-use weft_engine::windows::{self, WindowSpec, Windower};
-use weft_engine::{AnalysisSettings, Analyzer};
+use weft_engine::windows::{self, WindowSpec};
 use weft_tests::{Settings, Snapshot, WeftPlugin, state_format};
 
 const RATE_HZ: u32 = 48_000;
@@ -39,22 +37,16 @@ fn clip(bright: bool, seed: u64, seconds: f64) -> Vec<f32> {
 /// saves it.
 fn train(path: &Path) {
     let palette = Palette::default_palette();
-    let settings = AnalysisSettings::for_sample_rate(f64::from(RATE_HZ)).expect("rate");
     let spec = WindowSpec::default();
     let (mut rows, mut labels, mut tracks) = (Vec::new(), Vec::new(), Vec::new());
     for track in 0..8 {
         let bright = track % 2 == 0;
-        let mut analyzer =
-            Analyzer::with_palette(settings, &palette, SharesSettings::default()).expect("palette");
-        let mut w =
-            Windower::new(spec, f64::from(RATE_HZ), settings.framing, &palette).expect("spec");
-        analyzer.process(&clip(bright, 40 + track as u64, 5.0), None, |f| {
-            if let Some(win) = w.push(f) {
-                rows.push(win.features.to_vec());
-                labels.push(usize::from(!bright));
-                tracks.push(track);
-            }
-        });
+        let x = clip(bright, 40 + track as u64, 5.0);
+        for w in windows::clip_windows(&palette, spec, f64::from(RATE_HZ), &x).expect("windows") {
+            rows.push(w.features);
+            labels.push(usize::from(!bright));
+            tracks.push(track);
+        }
     }
     let data = LabelledWindows::new(
         windows::schema(spec, &palette).expect("schema"),
