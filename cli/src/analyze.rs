@@ -176,15 +176,7 @@ pub struct ClosenessSummary {
 }
 
 /// One style window of a file: the engine's window features (see `weft_engine::windows`).
-#[derive(Debug, Clone, PartialEq)]
-pub struct StyleWindow {
-    /// Centre time of the window's first frame, seconds.
-    pub start_s: f64,
-    /// Centre time of its last frame, seconds.
-    pub end_s: f64,
-    /// The features, in the schema's order.
-    pub features: Vec<f64>,
-}
+pub use weft_engine::windows::OwnedWindow as StyleWindow;
 
 /// What one file's analysis produced.
 #[derive(Debug, Clone)]
@@ -281,23 +273,13 @@ struct Scoring {
 
 impl StyleState {
     fn push<W: Write>(&mut self, f: &FrameResult, out: &mut Outputs<'_, W>) {
-        if let Some(w) = self.windower.push(f) {
-            let w = StyleWindow {
-                start_s: w.start_s,
-                end_s: w.end_s,
-                features: w.features.to_vec(),
-            };
+        if let Some(w) = self.windower.push(f).map(StyleWindow::from) {
             self.add(w, out);
         }
     }
 
     fn finish<W: Write>(&mut self, out: &mut Outputs<'_, W>) {
-        if let Some(w) = self.windower.finish() {
-            let w = StyleWindow {
-                start_s: w.start_s,
-                end_s: w.end_s,
-                features: w.features.to_vec(),
-            };
+        if let Some(w) = self.windower.finish().map(StyleWindow::from) {
             self.add(w, out);
         }
     }
