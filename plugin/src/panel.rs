@@ -10,11 +10,9 @@
 //! label beside it: sections are told apart by position and name, not colour alone.
 
 use crate::controls::{Controls, HISTORY_SPANS_S};
-use crate::snapshot::{
-    LEVEL_HISTORY_CELL_S, LEVEL_HISTORY_LEN, Labels, MIX_HISTORY_CELL_S, MixHistory,
-};
+use crate::snapshot::{LEVEL_HISTORY_LEN, Labels, MIX_HISTORY_CELL_S, MixHistory};
 use crate::{Snapshot, WeftParams};
-use egui::{Color32, CornerRadius, RichText, Sense, Stroke, Vec2, pos2, vec2};
+use egui::{Color32, CornerRadius, RichText, Sense, Stroke, pos2, vec2};
 use nice_plug::context::gui::GuiContext;
 use nice_plug_egui::resizable_window::ResizableWindow;
 use nice_plug_egui::widgets::ParamSlider;
@@ -1021,8 +1019,6 @@ fn level_view(ui: &mut egui::Ui, snap: &Snapshot) {
         );
         db += 12.0;
     }
-    ui.add_space(6.0);
-    level_trace(ui, snap);
 }
 
 fn reading(ui: &mut egui::Ui, name: &str, db: f32, colour: Color32) {
@@ -1034,40 +1030,6 @@ fn reading(ui: &mut egui::Ui, name: &str, db: f32, colour: Color32) {
     };
     ui.label(RichText::new(text).color(colour).size(15.0).monospace());
     ui.add_space(8.0);
-}
-
-/// The last ten seconds of RMS level as a line, newest at the right.
-fn level_trace(ui: &mut egui::Ui, snap: &Snapshot) {
-    let history: Vec<f32> = snap.history().iter().map(|c| c.rms_db).collect();
-    let history = &history[..];
-    let size = Vec2::new(ui.available_width(), 40.0);
-    let (rect, _) = ui.allocate_exact_size(size, Sense::hover());
-    let painter = ui.painter_at(rect);
-    painter.rect_filled(rect, CornerRadius::same(3), colours::TRACK);
-    let span_s = LEVEL_HISTORY_LEN as f64 * LEVEL_HISTORY_CELL_S;
-    painter.text(
-        rect.left_top() + vec2(4.0, 2.0),
-        egui::Align2::LEFT_TOP,
-        format!("RMS, last {span_s:.0} s"),
-        egui::FontId::proportional(11.0),
-        colours::MUTED,
-    );
-    if history.len() < 2 {
-        return;
-    }
-    let step = rect.width() / (LEVEL_HISTORY_LEN - 1) as f32;
-    let start = LEVEL_HISTORY_LEN - history.len();
-    let points: Vec<_> = history
-        .iter()
-        .enumerate()
-        .map(|(i, &db)| {
-            pos2(
-                rect.left() + (start + i) as f32 * step,
-                rect.bottom() - rect.height() * db_to_unit(db),
-            )
-        })
-        .collect();
-    painter.add(egui::Shape::line(points, Stroke::new(2.0, colours::LEVEL)));
 }
 
 /// Seconds as m:ss.s.
@@ -1092,7 +1054,15 @@ type Pick = fn(&crate::snapshot::TrendCell) -> f32;
 fn timbre_view(ui: &mut egui::Ui, snap: &Snapshot) {
     let t = &snap.timbre;
     let history = snap.history();
-    let rows: [(&str, String, Pick); 4] = [
+    let rows: [(&str, String, Pick); 5] = [
+        (
+            "Level",
+            format!(
+                "{:.1} dBFS",
+                snap.rms_smoothed_db.max(METER_RANGE_DB.0 - 40.0)
+            ),
+            |c| c.rms_db,
+        ),
         ("Centroid", hz(t.centroid_hz), |c| c.centroid_hz),
         ("Roll-off", hz(t.rolloff_hz), |c| c.rolloff_hz),
         ("Flatness", format!("{:.3}", t.flatness), |c| c.flatness),
@@ -1110,6 +1080,12 @@ fn timbre_view(ui: &mut egui::Ui, snap: &Snapshot) {
                 ui.end_row();
             }
         });
+    let span_s = LEVEL_HISTORY_LEN as f64 * crate::snapshot::LEVEL_HISTORY_CELL_S;
+    ui.label(
+        RichText::new(format!("trend lines: the last {span_s:.0} s"))
+            .size(11.0)
+            .color(colours::MUTED),
+    );
 }
 
 /// A small trend line scaled to its own range (newest at the right).

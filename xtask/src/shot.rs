@@ -97,15 +97,18 @@ struct View {
     full_history: bool,
     /// The scene's audio for this view.
     play: Play,
+    /// Make every panel frame take this long (ms): the analysis must not notice.
+    slow_panel_ms: u32,
 }
 
-const VIEWS: [View; 4] = [
+const VIEWS: [View; 5] = [
     View {
         what: "overview: mix by section, style, level and timbre, history by section",
         file: "panel.png",
         panel_view: "",
         full_history: false,
         play: Play::Dockside,
+        slow_panel_ms: 0,
     },
     View {
         what: "every section open to its families, history stacked by family",
@@ -113,6 +116,7 @@ const VIEWS: [View; 4] = [
         panel_view: "families,family-history",
         full_history: false,
         play: Play::Set(0.0),
+        slow_panel_ms: 0,
     },
     View {
         what: "files and set log open, a set log recording",
@@ -120,6 +124,7 @@ const VIEWS: [View; 4] = [
         panel_view: "setup,record",
         full_history: false,
         play: Play::Set(0.0),
+        slow_panel_ms: 0,
     },
     View {
         what: "ten minutes of history (frame-time measurement)",
@@ -127,6 +132,15 @@ const VIEWS: [View; 4] = [
         panel_view: "",
         full_history: true,
         play: Play::Set(0.0),
+        slow_panel_ms: 0,
+    },
+    View {
+        what: "a deliberately slow panel (250 ms per frame): the analysis keeps pace, drops nothing",
+        file: "panel-slow.png",
+        panel_view: "",
+        full_history: false,
+        play: Play::Dockside,
+        slow_panel_ms: 250,
     },
 ];
 
@@ -166,6 +180,9 @@ pub fn run(options: &Options) -> Result<()> {
         if view.full_history {
             env.push(("WEFT_TEST_PREFILL_HISTORY", "1".to_owned()));
         }
+        if view.slow_panel_ms > 0 {
+            env.push(("WEFT_TEST_PANEL_DELAY_MS", view.slow_panel_ms.to_string()));
+        }
         let mut app = start_standalone(&binary, Some(&snapshot_dir), Some(DISPLAY), &env)?;
         let inputs = weft_inputs(Duration::from_secs(60))?;
         let (audio, start_s) = match (&options.audio, &scene) {
@@ -191,7 +208,7 @@ pub fn run(options: &Options) -> Result<()> {
         app.stop(Duration::from_secs(1));
         player.stop(Duration::from_secs(1));
         check_picture(&out)?;
-        check_snapshot(&snapshot_dir, model.is_some())?;
+        check_snapshot(&snapshot_dir, model.is_some(), options.seconds)?;
         let timing = check_panel(&snapshot_dir, view)?;
         println!("shot: wrote {} ({}){timing}", out.display(), view.what);
     }
@@ -271,7 +288,7 @@ fn read_json(path: &Path) -> Result<serde_json::Value> {
 
 /// Fails unless the analysis heard the audio, dropped nothing, shared it out among families,
 /// and (with a model) estimated the style.
-fn check_snapshot(dir: &Path, with_model: bool) -> Result<()> {
+fn check_snapshot(dir: &Path, with_model: bool, seconds: f64) -> Result<()> {
     let entry = std::fs::read_dir(dir)
         .with_context(|| format!("no snapshot folder {}", dir.display()))?
         .filter_map(Result::ok)
@@ -289,8 +306,10 @@ fn check_snapshot(dir: &Path, with_model: bool) -> Result<()> {
     let analysed = number(&json["samples_analysed"], "samples_analysed")?;
     let dropped = number(&json["samples_dropped"], "samples_dropped")?;
     let updates = number(&json["mix"]["updates"], "mix.updates")?;
-    if analysed < 48_000.0 {
-        bail!("the panel analysed less than a second of audio");
+    // JACK runs the plugin from activation on, so at least the seconds the view played (at
+    // 48 kHz) must have been analysed: an analysis that fell behind would show here or in drops.
+    if analysed < 0.9 * seconds * 48_000.0 {
+        bail!("the analysis fell behind: {analysed} samples after {seconds} s");
     }
     if dropped > 0.0 {
         bail!("the panel dropped {dropped} samples at real-time pace");
@@ -314,7 +333,9 @@ fn check_snapshot(dir: &Path, with_model: bool) -> Result<()> {
 fn check_panel(dir: &Path, view: &View) -> Result<String> {
     let json = read_json(&dir.join("weft-panel.json"))?;
     let frames = json["frames"].as_f64().unwrap_or(0.0);
-    if frames < 10.0 {
+    // A slow panel draws about four frames a second.
+    let least = if view.slow_panel_ms > 0 { 3.0 } else { 10.0 };
+    if frames < least {
         bail!("the panel drew only {frames} frames");
     }
     if view.panel_view.contains("record") && json["recording"] != serde_json::Value::Bool(true) {
