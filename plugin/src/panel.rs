@@ -685,7 +685,7 @@ fn share_row(
 /// Drawn as one mesh, so ten minutes of history cost a few thousand quads.
 fn history_strip(ui: &mut egui::Ui, history: &MixHistory, span_s: u32, by_family: bool) {
     let labels = &history.labels;
-    let height = 100.0;
+    let height = 78.0;
     let (rect, _) = ui.allocate_exact_size(vec2(ui.available_width(), height), Sense::hover());
     let painter = ui.painter_at(rect);
     painter.rect_filled(rect, CornerRadius::same(3), colours::TRACK);
