@@ -35,7 +35,7 @@ const LEVEL_TOLERANCE_DB: f32 = 1e-3;
 /// Relative difference allowed on descriptors after recovery (same samples, same arithmetic).
 const DESCRIPTOR_TOLERANCE: f32 = 1e-3;
 /// Absolute difference allowed on shares between two analyzers that have seen the same audio
-/// for a window (the defect test `shares_forget_their_history_within_one_window`).
+/// for a window (`shares_forget_their_history_within_one_window`).
 const SHARE_TOLERANCE: f32 = 0.02;
 /// Difference allowed on the mean explained share (1 − *unexplained*) after the poison against
 /// a fresh analyzer: a dictionary stuck at zero would explain nothing.
@@ -217,7 +217,7 @@ struct Gaps {
 /// `tail_start` (a sample index, a multiple of the hop) on with a fresh analyzer's frames of the
 /// tail alone, from one window in: level and descriptors equal, shares alive (a signal where the
 /// fresh analyzer sees one, summing to 1, explaining as much of the energy, moving from column
-/// to column). Equal shares are not asked for: see `shares_forget_their_history_within_one_window`.
+/// to column). Equal shares are checked separately, in `shares_forget_their_history_within_one_window`.
 fn assert_recovered(poisoned: &[FrameResult], tail: &[f32], tail_start: usize, what: &str) -> Gaps {
     let hop = hop();
     assert_eq!(tail_start % hop, 0, "the tail must start on a hop");
@@ -530,14 +530,11 @@ fn silence_then_loud() {
 
 /// Two analyzers that have both heard the same audio for a whole window should show the same
 /// shares, whatever came before: that is what "recovers within one window" means for shares.
-/// They do not: the activations are warm-started from the previous column and 30 multiplicative
-/// updates per column do not converge, so a different history (other music, silence, or the
-/// frame or two that a fresh start lacks) leaves a difference that does not fade in a window —
-/// measured up to 0.9 of the energy on a family 3–20 s later, in both the two-stage and the
-/// NMF-alone mode.
+/// They once did not (a warm start that never forgot: up to 0.9 of the energy on a family 3–20 s
+/// later); the estimator now starts its fit afresh at onsets (a column with more than half of its
+/// band energy new), so the same onset makes two analyzers identical from then on. A passage
+/// with no onset at all still keeps its history.
 #[test]
-#[ignore = "defect: shares keep their history beyond one window (warm-started NMF does not \
-            converge per column); see engine/src/shares/estimator.rs and nmf.rs"]
 fn shares_forget_their_history_within_one_window() {
     let unit = ALIGN_HOPS * hop();
     let prefix_len = 5 * unit;

@@ -18,8 +18,8 @@ mod tracker;
 
 pub use columns::ColumnStream;
 pub use estimator::{
-    DEFAULT_RESPONSE_MS, MAX_RESPONSE_MS, NO_SIGNAL_DB, Shares, SharesError, SharesEstimator,
-    SharesMode, SharesSettings, SharesUpdate,
+    DEFAULT_RESPONSE_MS, MAX_RESPONSE_MS, NO_SIGNAL_DB, ONSET_RISE_FRACTION, SOLVE_TOLERANCE,
+    Shares, SharesError, SharesEstimator, SharesMode, SharesSettings, SharesUpdate,
 };
 pub use presence::{PresenceModel, PresenceTraining, train_presence};
 pub use tracker::SharesTracker;
