@@ -46,6 +46,25 @@
 //! flux and flatness use the power. dB values are `10·log10(max(amin, x))` with
 //! `amin = 1e-10` ([`AMIN_POWER`]) and `ref = 1`, so they floor at −100 dB ([`DB_FLOOR`]).
 //!
+//! # Precision of each step
+//!
+//! Each step computes in the precision librosa 0.11.0 stores its result in, or in float64 where
+//! that is as cheap and at least as close:
+//!
+//! - window × frame and FFT: float64 (librosa multiplies the float32 frame by a float64 window,
+//!   so its FFT runs in float64; a float32 FFT would put its rounding floor above `amin` for
+//!   loud clean frames, see [`crate::spectrum`]); bins rounded to complex64 as librosa stores
+//!   them; magnitude `|X|` in float64 rounded to float32, power its float32 square;
+//! - mel power: float32 sums (librosa's float32 `melspectrogram`);
+//! - dB: float64 logarithm rounded to float32 for the mel bands (float32 `power_to_db`), kept in
+//!   float64 for the contrast peaks and valleys;
+//! - MFCC: float64 DCT sums rounded to float32; flux: float32 differences, float64 mean;
+//! - centroid and bandwidth: float64 moments; roll-off: the float32 running sum taken in the
+//!   same order as librosa's float32 `cumsum`, so the chosen bin is the same;
+//! - flatness: float64 log-sum and mean (closer than librosa's float32 logarithms; the two agree
+//!   to float32 precision); contrast: float32 sums of the band extremes as numpy's float32 `mean`;
+//! - zero-crossing rate: an exact count; RMS: float64 sum of squares rounded to float32.
+//!
 //! # Where live and offline differ, by nature
 //!
 //! librosa's `power_to_db` (used by `feature.mfcc`, `onset.onset_strength` and
@@ -615,10 +634,10 @@ fn ln_positive(x: f64) -> f64 {
 }
 
 /// dB of a contrast peak or valley (a mean magnitude, which librosa converts with `power_to_db`
-/// in float64).
+/// in float64), with the series logarithm of [`power_to_db`] (about 1e-13 relative).
 #[inline]
 fn amplitude_mean_to_db(x: f64) -> f64 {
-    10.0 * x.max(1e-10).log10()
+    10.0 * std::f64::consts::LOG10_E * ln_positive(x.max(1e-10))
 }
 
 /// The first half of each of the first `rows` rows of the orthonormal DCT-II matrix (scipy 1.15
@@ -689,10 +708,14 @@ fn flux(delay: &mut [f32], prev_mel_db: &mut [f32; N_MELS], mel_db: &[f32; N_MEL
 
 /// Mean over bands of `max(0, later − earlier)` (float32 differences as librosa takes them), dB.
 fn mean_rise(earlier: &[f32; N_MELS], later: &[f32; N_MELS]) -> f32 {
-    let mut sum = 0.0_f64;
-    for (&a, &b) in earlier.iter().zip(later) {
-        sum += f64::from((b - a).max(0.0));
+    // Eight independent partial sums (N_MELS is a multiple of 8).
+    let mut acc = [0.0_f64; 8];
+    for (a, b) in earlier.chunks_exact(8).zip(later.chunks_exact(8)) {
+        for i in 0..8 {
+            acc[i] += f64::from((b[i] - a[i]).max(0.0));
+        }
     }
+    let sum = ((acc[0] + acc[1]) + (acc[2] + acc[3])) + ((acc[4] + acc[5]) + (acc[6] + acc[7]));
     (sum / N_MELS as f64) as f32
 }
 
@@ -703,22 +726,24 @@ fn mean_rise(earlier: &[f32; N_MELS], later: &[f32; N_MELS]) -> f32 {
 /// variance `Σm·(f − c)²` is then `Σm·f² − 2c·Σm·f + c²·Σm`, whose cancellation costs about
 /// `(c / bandwidth)²` float64 epsilons (below 1e-7 relative for any audio spectrum).
 fn centroid_bandwidth(magnitude: &[f32], freqs: &[f64], freqs_sq: &[f64]) -> (f64, f64) {
-    let mut m0 = [0.0_f64; 4];
-    let mut m1 = [0.0_f64; 4];
-    let mut m2 = [0.0_f64; 4];
-    let mut mc = magnitude.chunks_exact(4);
-    let mut fc = freqs.chunks_exact(4);
-    let mut qc = freqs_sq.chunks_exact(4);
+    // Eight independent partial sums per moment, so the additions are not long dependency
+    // chains.
+    let mut m0 = [0.0_f64; 8];
+    let mut m1 = [0.0_f64; 8];
+    let mut m2 = [0.0_f64; 8];
+    let mut mc = magnitude.chunks_exact(8);
+    let mut fc = freqs.chunks_exact(8);
+    let mut qc = freqs_sq.chunks_exact(8);
     for ((m, f), f2) in (&mut mc).zip(&mut fc).zip(&mut qc) {
-        for i in 0..4 {
+        for i in 0..8 {
             let m = f64::from(m[i]);
             m0[i] += m;
             m1[i] += m * f[i];
             m2[i] += m * f2[i];
         }
     }
-    let sum4 = |a: [f64; 4]| (a[0] + a[1]) + (a[2] + a[3]);
-    let (mut s0, mut s1, mut s2) = (sum4(m0), sum4(m1), sum4(m2));
+    let sum8 = |a: [f64; 8]| ((a[0] + a[1]) + (a[2] + a[3])) + ((a[4] + a[5]) + (a[6] + a[7]));
+    let (mut s0, mut s1, mut s2) = (sum8(m0), sum8(m1), sum8(m2));
     for ((&m, &f), &f2) in mc
         .remainder()
         .iter()
@@ -764,12 +789,15 @@ fn rolloff(
 }
 
 /// Spectral flatness of a power spectrum (librosa 0.11.0 `spectral_flatness`: each bin floored
-/// at `amin`, geometric mean over arithmetic mean). The log-sum is taken exactly in float64 as
-/// the sum of the float32 exponents plus the logarithm of the product of the mantissas.
+/// at `amin`, geometric mean over arithmetic mean). The log-sum is taken in float64 as the sum of
+/// the float32 exponents plus the logarithm of the product of the mantissas: one logarithm per
+/// frame, the running product renormalised to [1, 2) every 64 bins (its rounding costs about one
+/// float64 epsilon per 64 bins, far below librosa's own float32 logarithms).
 fn flatness(power: &[f32]) -> f32 {
     const LANES: usize = 8;
     let mut exponents = 0_i64;
-    let mut log_mantissas = 0.0_f64;
+    // The product of all mantissas so far, kept in [1, 2) (its exponent is in `exponents`).
+    let mut mantissas = 1.0_f64;
     let mut sum = [0.0_f64; LANES];
     // 8 lanes × 8 steps: each lane's product of 8 mantissas in [1, 2) stays below 2^8, and the
     // product of the lanes below 2^64, far inside float64's range.
@@ -793,13 +821,18 @@ fn flatness(power: &[f32]) -> f32 {
             exps[0] += ((bits >> 23) & 0xff) as i32 - 127;
             prod[0] *= f64::from(f32::from_bits((bits & 0x007f_ffff) | 0x3f80_0000));
         }
+        // The block's product (below 2^64) joins the running product, which is then brought
+        // back to [1, 2) by moving its binary exponent into the integer sum.
         let p = ((prod[0] * prod[1]) * (prod[2] * prod[3]))
-            * ((prod[4] * prod[5]) * (prod[6] * prod[7]));
-        log_mantissas += p.ln();
+            * ((prod[4] * prod[5]) * (prod[6] * prod[7]))
+            * mantissas;
+        let bits = p.to_bits();
+        exponents += ((bits >> 52) & 0x7ff) as i64 - 1023;
+        mantissas = f64::from_bits((bits & 0x000f_ffff_ffff_ffff) | 0x3ff0_0000_0000_0000);
         exponents += exps.iter().map(|&e| i64::from(e)).sum::<i64>();
     }
     let n = power.len() as f64;
-    let mean_log = (log_mantissas + exponents as f64 * std::f64::consts::LN_2) / n;
+    let mean_log = (mantissas.ln() + exponents as f64 * std::f64::consts::LN_2) / n;
     let amean =
         ((sum[0] + sum[1]) + (sum[2] + sum[3]) + ((sum[4] + sum[5]) + (sum[6] + sum[7]))) / n;
     (mean_log.exp() / amean) as f32
@@ -1000,15 +1033,16 @@ fn zero_crossings(x: &[f32]) -> usize {
 /// RMS of the frame, linear, with samples sanitised as for the spectrum
 /// ([`crate::spectrum::sanitize`]) when `poisoned` (the spectrum found samples to sanitise).
 fn rms(frame: &[f32], poisoned: bool) -> f32 {
-    let mut acc = [0.0_f64; 4];
-    let mut chunks = frame.chunks_exact(4);
+    // Eight independent partial sums, so the additions are not one long dependency chain.
+    let mut acc = [0.0_f64; 8];
+    let mut chunks = frame.chunks_exact(8);
     for c in &mut chunks {
-        for i in 0..4 {
+        for i in 0..8 {
             let v = f64::from(c[i]);
             acc[i] += v * v;
         }
     }
-    let mut s = (acc[0] + acc[1]) + (acc[2] + acc[3]);
+    let mut s = ((acc[0] + acc[1]) + (acc[2] + acc[3])) + ((acc[4] + acc[5]) + (acc[6] + acc[7]));
     for &v in chunks.remainder() {
         s += f64::from(v) * f64::from(v);
     }

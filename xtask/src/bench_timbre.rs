@@ -10,7 +10,8 @@
 //!    level meter and frame times (what `weft analyze --frames` runs).
 //! 3. Runs `tests/python/timbre_reference.py bench`, which extracts the same set with librosa,
 //!    timed inside Python so interpreter start-up and imports are excluded, on one BLAS/OpenMP
-//!    thread, best of [`LIBROSA_REPEATS`] runs: once sharing one STFT between the features (the
+//!    thread (and without any OpenBLAS kernel pinning from the environment, which would slow
+//!    numpy), best of [`LIBROSA_REPEATS`] runs: once sharing one STFT between the features (the
 //!    fastest way to script librosa) and once calling each feature function on the samples (the
 //!    usual way, an STFT per function).
 //! 4. Prints the times and ends with `speedup_vs_librosa: <librosa time / Weft descriptor time>`,
@@ -31,7 +32,7 @@ const FRAME: usize = 2048;
 const HOP: usize = 512;
 /// Timed repetitions (the best is reported: common practice for benchmarks of fixed work).
 const WEFT_REPEATS: usize = 5;
-const LIBROSA_REPEATS: usize = 2;
+const LIBROSA_REPEATS: usize = 3;
 /// The goal of issue 3: Weft at least this many times faster than librosa on one core.
 const GOAL: f64 = 30.0;
 
@@ -72,6 +73,10 @@ pub fn run() -> Result<()> {
         .env("OMP_NUM_THREADS", "1")
         .env("MKL_NUM_THREADS", "1")
         .env("NUMBA_NUM_THREADS", "1")
+        // This machine's environment may pin OpenBLAS to an older kernel (OPENBLAS_CORETYPE,
+        // OPENBLAS_L2_SIZE), which slows a current numpy: the reference runs without them.
+        .env_remove("OPENBLAS_CORETYPE")
+        .env_remove("OPENBLAS_L2_SIZE")
         .output()
         .context("could not run tests/python/timbre_reference.py")?;
     if !output.status.success() {
