@@ -19,8 +19,6 @@ use std::sync::OnceLock;
 const EXTENSIONS: [&str; 12] = [
     "", "wav", "flac", "mp3", "ogg", "m4a", "aac", "mkv", "caf", "aiff", "webm", "mp4",
 ];
-/// Whether ±∞ from the known mid/side overflow is tolerated (feature `known-decode-overflow`).
-const KNOWN_OVERFLOW: bool = cfg!(feature = "known-decode-overflow");
 /// Frames per channel decoded from one input at most (a hang guard; ~35 min at 8 kHz).
 const MAX_FRAMES: u64 = 1 << 24;
 
@@ -59,13 +57,11 @@ fuzz_target!(|data: &[u8]| {
         while let Ok(Some((mid, side))) = source.next_block() {
             assert_eq!(mid.len(), side.len(), "mid and side differ in length");
             assert!(!mid.is_empty(), "an empty block");
-            // `cli/src/decode.rs` refuses non-finite samples, but forms mid and side as
-            // 0.5·(a + b), which overflows to ±∞ for finite samples beyond f32::MAX / 2
-            // (tests/corpus/decode/overflowing-float-wav-mid). Until that is fixed, the
-            // `known-decode-overflow` feature lets the fuzzer look past it; NaN is never allowed.
-            let allowed = |v: &f32| v.is_finite() || (KNOWN_OVERFLOW && v.is_infinite());
+            // `cli/src/decode.rs` refuses non-finite samples and halves before adding, so mid
+            // and side stay finite even for samples near ±f32::MAX (the overflow this target
+            // once found: tests/corpus/decode/overflowing-float-wav-mid).
             assert!(
-                mid.iter().chain(side).all(allowed),
+                mid.iter().chain(side).all(|v| v.is_finite()),
                 "a non-finite sample passed the decoder's check"
             );
             frames += mid.len() as u64;
