@@ -291,6 +291,8 @@ struct FrameState {
     history_changed: bool,
     style: Option<LiveStyle>,
     log: Option<SetLog>,
+    /// Cells logged since the set log started (its audio time, also when rendering offline).
+    log_cells: u64,
     hop_s: f64,
 }
 
@@ -313,6 +315,7 @@ impl FrameState {
             history_changed: false,
             style: None,
             log: None,
+            log_cells: 0,
             hop_s,
         }
     }
@@ -475,12 +478,13 @@ impl FrameState {
         self.history.push(cell);
         self.history_changed = true;
         if let Some(log) = &self.log {
+            self.log_cells += 1;
             let t = &self.snapshot.timbre;
             let unix_s = std::time::SystemTime::now()
                 .duration_since(std::time::UNIX_EPOCH)
                 .map_or(0.0, |d| d.as_secs_f64());
             log.push(LogRow {
-                time_s: log.elapsed_s(),
+                time_s: self.log_cells as f64 * f64::from(self.frames_per_mix_cell) * self.hop_s,
                 unix_s,
                 rms_dbfs: cell.rms_db,
                 centroid_hz: t.centroid_hz,
@@ -600,6 +604,7 @@ fn apply_controls(
             Ok(log) => {
                 labels.log_file = Some(log.path().display().to_string());
                 state.log = Some(log);
+                state.log_cells = 0;
                 state.snapshot.log = LogReading {
                     recording: true,
                     rows: 0,
@@ -959,6 +964,14 @@ mod tests {
             .and_then(|v| v.parse().ok())
             .expect("closeness in the last row");
         assert!((0.0..=1.0).contains(&last));
+        // Audio time, not wall time: the offline run took far less than 8 s.
+        let t_last: f64 = lines[lines.len() - 1]
+            .split(',')
+            .next()
+            .and_then(|v| v.parse().ok())
+            .expect("time in the last row");
+        let expected = (lines.len() - 1) as f64 * MIX_HISTORY_CELL_S;
+        assert!((t_last - expected).abs() < 0.05 * expected, "{t_last} vs {expected}");
         let _ = std::fs::remove_dir_all(&dir);
     }
 

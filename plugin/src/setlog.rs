@@ -22,7 +22,7 @@ const QUEUE_ROWS: usize = 128;
 /// One row of the log.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct LogRow {
-    /// Seconds since the log started.
+    /// Seconds of audio since the log started (the end of this row's half second).
     pub time_s: f64,
     /// Wall-clock time, seconds since the Unix epoch.
     pub unix_s: f64,
@@ -52,7 +52,6 @@ pub struct SetLog {
     rows: Arc<AtomicU64>,
     failed: Arc<AtomicBool>,
     path: PathBuf,
-    started: SystemTime,
 }
 
 /// UTC calendar date and time of a Unix time, as `YYYY-MM-DD_HH-MM-SS` (days to civil date:
@@ -123,18 +122,12 @@ impl SetLog {
             rows,
             failed,
             path,
-            started,
         })
     }
 
     /// The file being written.
     pub fn path(&self) -> &Path {
         &self.path
-    }
-
-    /// Seconds since the log started.
-    pub fn elapsed_s(&self) -> f64 {
-        self.started.elapsed().map_or(0.0, |d| d.as_secs_f64())
     }
 
     /// Rows written so far.
