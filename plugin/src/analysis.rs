@@ -971,7 +971,10 @@ mod tests {
             .and_then(|v| v.parse().ok())
             .expect("time in the last row");
         let expected = (lines.len() - 1) as f64 * MIX_HISTORY_CELL_S;
-        assert!((t_last - expected).abs() < 0.05 * expected, "{t_last} vs {expected}");
+        assert!(
+            (t_last - expected).abs() < 0.05 * expected,
+            "{t_last} vs {expected}"
+        );
         let _ = std::fs::remove_dir_all(&dir);
     }
 
