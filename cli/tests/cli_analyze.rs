@@ -14,10 +14,12 @@
 //!   file must equal the engine's output on FFmpeg's decoding of it;
 //! - GNU time 1.9 (`/usr/bin/time -f %M`) measures the peak memory of the process.
 
+mod common;
+use common::{path_str, text, weft};
 use rand::{Rng, SeedableRng, rngs::SmallRng};
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::process::Command;
 use weft_engine::palette::Palette;
 use weft_engine::shares::{Shares, SharesSettings};
 use weft_engine::timbre::Descriptors;
@@ -25,21 +27,6 @@ use weft_engine::windows::slug;
 use weft_engine::{AnalysisSettings, Analyzer, FrameConfig, FrameResult};
 
 const SETUP_HINT: &str = "run `cargo xtask setup` (it installs ffmpeg and time)";
-
-fn weft(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_weft"))
-        .args(args)
-        .output()
-        .expect("the weft binary runs")
-}
-
-fn text(bytes: &[u8]) -> String {
-    String::from_utf8_lossy(bytes).into_owned()
-}
-
-fn path_str(p: &Path) -> &str {
-    p.to_str().expect("temporary paths are UTF-8")
-}
 
 /// Runs FFmpeg quietly; a missing FFmpeg fails the test with the setup command.
 fn ffmpeg(args: &[&str]) {

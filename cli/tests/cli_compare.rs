@@ -8,9 +8,11 @@
 //! - the model's own training records (`StyleModel::class_mean`, `Standardizer::scale`) give the
 //!   category's typical range the CLI must compare the file with.
 
+mod common;
+use common::{path_str, text, weft};
 use rand::{Rng, SeedableRng, rngs::SmallRng};
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::process::Output;
 use std::sync::OnceLock;
 use weft_engine::evaluation::{cross_validate, default_folds};
 use weft_engine::palette::Palette;
@@ -18,21 +20,6 @@ use weft_engine::style::{FeatureMatrix, LabelledWindows, ModelKind, ModelParams,
 use weft_engine::windows::{WindowSpec, clip_windows, schema};
 
 const RATE_HZ: u32 = 22_050;
-
-fn weft(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_weft"))
-        .args(args)
-        .output()
-        .expect("the weft binary runs")
-}
-
-fn text(bytes: &[u8]) -> String {
-    String::from_utf8_lossy(bytes).into_owned()
-}
-
-fn path_str(p: &Path) -> &str {
-    p.to_str().expect("temporary paths are UTF-8")
-}
 
 /// The two kinds of track: "bright" (hiss bursts on a beat over a high tone) and "low" (a soft
 /// low tone with a slow swell), each varied by the seed.

@@ -8,26 +8,17 @@
 //! numbers copied from an earlier run. References: hound 3.5 writes the WAV files and reads
 //! the demo's; `weft_engine::style::StyleModel::load` reads the model files.
 
+mod common;
+use common::{text, weft};
 use rand::{Rng, SeedableRng, rngs::SmallRng};
 use serde_json::Value;
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::process::Output;
 use weft_engine::palette::Palette;
 use weft_engine::style::StyleModel;
 
 const RATE_HZ: u32 = 22_050;
 const TRACK_S: f64 = 5.0;
-
-fn weft(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_weft"))
-        .args(args)
-        .output()
-        .expect("the weft binary runs")
-}
-
-fn text(bytes: &[u8]) -> String {
-    String::from_utf8_lossy(bytes).into_owned()
-}
 
 fn s(p: &Path) -> &str {
     p.to_str().expect("temporary paths are UTF-8")
