@@ -730,7 +730,8 @@ fn run(mut job: AnalysisJob, stop: &AtomicBool) -> Publishers {
         }
         if moved > 0
             || stopping
-            || state.snapshot.labels.as_ref() != job.publish.input_buffer().labels.as_ref()
+            // New labels (a file loaded) are published even while no audio arrives.
+            || !Arc::ptr_eq(&state.snapshot.labels, &job.publish.input_buffer().labels)
         {
             state.snapshot.samples_analysed = analyzer.samples_in();
             state.snapshot.samples_dropped = job.input.dropped.load(Ordering::Relaxed);
