@@ -11,12 +11,24 @@
 //! into [`SNAPSHOT_DIR_ENV`] (this host always sets that variable, once per process, before the
 //! plugin is loaded).
 //!
-//! Everything runs on the calling thread: it is the host's main thread and, between activation
-//! and deactivation, its audio thread too. Weft's `process()` never calls back into the host,
-//! so that is enough for these tests.
+//! By default everything runs on the calling thread: it is the host's main thread and, between
+//! activation and deactivation, its audio thread too. Weft's `process()` never calls back into
+//! the host, so that is enough for most tests. For a real audio thread,
+//! [`WeftPlugin::detach_audio`] hands the started processor out as a [`DetachedAudio`] (which
+//! can move to another thread) and [`WeftPlugin::attach_audio`] takes it back before
+//! deactivation; the main-thread calls stay on the thread that created the instance.
+//!
+//! The editor: [`WeftPlugin::open_editor`] embeds the plugin's panel in a host window through
+//! the CLAP `gui` extension (X11 API, embedded, as nice-plug's wrapper supports), and
+//! [`ParentWindow`] is such a host window, made with `x11rb` on a display the caller chooses.
+//! The host implements the `gui` host extension (nice-plug's wrapper requires it to create an
+//! editor) and records the plugin's resize requests and closings, see [`WeftHostShared`].
 
 use clack_extensions::audio_ports::{AudioPortFlags, AudioPortInfoBuffer, PluginAudioPorts};
 use clack_extensions::audio_ports_config::{AudioPortsConfigBuffer, PluginAudioPortsConfig};
+use clack_extensions::gui::{
+    GuiApiType, GuiConfiguration, GuiError, GuiSize, HostGui, HostGuiImpl, PluginGui, Window,
+};
 use clack_extensions::render::{PluginRender, RenderMode};
 use clack_extensions::state::{PluginState, StateError};
 use clack_host::entry::PluginEntryError;
@@ -24,7 +36,7 @@ use clack_host::prelude::*;
 use serde::Deserialize;
 use std::ffi::CStr;
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
 use std::sync::{Condvar, Mutex, OnceLock, PoisonError};
 use std::time::{Duration, Instant};
 use thiserror::Error;
@@ -166,6 +178,59 @@ pub enum HostError {
         #[source]
         source: std::io::Error,
     },
+    /// The audio processor is out on another thread ([`WeftPlugin::detach_audio`]).
+    #[error("the audio processor is detached: attach it again first")]
+    AudioDetached,
+    /// [`WeftPlugin::attach_audio`] was given the processor of another instance or activation.
+    #[error("this audio processor belongs to another instance or activation")]
+    ForeignAudio,
+    /// The plugin does not offer its editor for the X11 API, embedded.
+    #[error("the plugin does not support an embedded X11 editor")]
+    EditorUnsupported,
+    /// The plugin reported no size for its editor (CLAP `gui.get_size`).
+    #[error("the editor reported no size")]
+    NoEditorSize,
+    /// [`WeftPlugin::open_editor`] was called while the editor is open.
+    #[error("the editor is already open")]
+    EditorOpen,
+    /// [`WeftPlugin::close_editor`] was called while the editor is closed.
+    #[error("the editor is not open")]
+    EditorClosed,
+    /// A call of the CLAP `gui` extension failed.
+    #[error("the editor's {action} failed")]
+    Gui {
+        /// The call: "create", "get_size", "set_parent", "show", "hide".
+        action: &'static str,
+        /// What clack-extensions reported.
+        #[source]
+        source: GuiError,
+    },
+    /// Talking to the X server failed.
+    #[error("X11: {action} failed")]
+    X11 {
+        /// What the host tried.
+        action: &'static str,
+        /// What x11rb reported.
+        #[source]
+        source: x11rb::errors::ReplyOrIdError,
+    },
+    /// No connection to the X server.
+    #[error("cannot connect to the X display {display:?}")]
+    X11Connect {
+        /// The display asked for (`None`: the `DISPLAY` environment variable).
+        display: Option<String>,
+        /// What x11rb reported.
+        #[source]
+        source: x11rb::errors::ConnectError,
+    },
+    /// A window's visual or pixel format is not one [`ParentWindow::pixel_rgb`] can read.
+    #[error("cannot read pixels of window {window:#x}: {reason}")]
+    X11Pixels {
+        /// The window.
+        window: u32,
+        /// What is unsupported.
+        reason: &'static str,
+    },
 }
 
 /// The workspace root (this crate's parent folder).
@@ -303,6 +368,44 @@ pub struct WeftHostShared {
     restart_requested: AtomicBool,
     process_requested: AtomicBool,
     callback_requested: AtomicBool,
+    /// The newest editor size the plugin asked for (CLAP `gui.request_resize`), physical pixels.
+    resize_request: Mutex<Option<GuiSize>>,
+    /// How often the plugin said its editor was closed (CLAP `gui.closed`).
+    gui_closed: AtomicUsize,
+}
+
+/// The `gui` host extension. nice-plug's wrapper needs it to create an editor (its
+/// `ext_gui_create` uses the host's `clap_host_gui` without checking for it).
+impl HostGuiImpl for WeftHostShared {
+    fn resize_hints_changed(&self) {}
+
+    /// Accepts every size: the caller resizes the [`ParentWindow`] after
+    /// [`WeftPlugin::take_resize_request`].
+    fn request_resize(&self, new_size: GuiSize) -> Result<(), clack_host::host::HostError> {
+        *self
+            .resize_request
+            .lock()
+            .unwrap_or_else(PoisonError::into_inner) = Some(new_size);
+        Ok(())
+    }
+
+    /// Refused: only the host decides when the editor is shown.
+    fn request_show(&self) -> Result<(), clack_host::host::HostError> {
+        Err(clack_host::host::HostError::Message(
+            "the test host shows the editor itself",
+        ))
+    }
+
+    /// Refused: only the host decides when the editor is hidden.
+    fn request_hide(&self) -> Result<(), clack_host::host::HostError> {
+        Err(clack_host::host::HostError::Message(
+            "the test host hides the editor itself",
+        ))
+    }
+
+    fn closed(&self, _was_destroyed: bool) {
+        self.gui_closed.fetch_add(1, Ordering::SeqCst);
+    }
 }
 
 impl SharedHandler<'_> for WeftHostShared {
@@ -319,13 +422,17 @@ impl SharedHandler<'_> for WeftHostShared {
     }
 }
 
-/// The host's handler types (no host extensions: Weft needs none).
+/// The host's handler types; the one host extension is `gui` (for the editor).
 pub struct WeftHost;
 
 impl HostHandlers for WeftHost {
     type Shared<'a> = WeftHostShared;
     type MainThread<'a> = ();
     type AudioProcessor<'a> = ();
+
+    fn declare_extensions(builder: &mut HostExtensions<Self>, _shared: &Self::Shared<'_>) {
+        builder.register::<HostGui>();
+    }
 }
 
 /// How to activate the plugin.
@@ -459,20 +566,133 @@ impl Drop for SnapshotClaim {
     }
 }
 
-/// What exists only while the plugin is active.
-struct Active {
+/// The audio-thread side of an activation: the started processor and its port buffers.
+struct AudioSide {
     processor: StartedPluginAudioProcessor<WeftHost>,
     settings: Settings,
     inputs: AudioPorts,
     outputs: AudioPorts,
     steady_time: u64,
+}
+
+impl AudioSide {
+    /// Processes one block (see [`WeftPlugin::process`]).
+    fn process<I, O>(
+        &mut self,
+        inputs: &mut [I],
+        outputs: &mut [O],
+    ) -> Result<ProcessStatus, HostError>
+    where
+        I: AsMut<[f32]>,
+        O: AsMut<[f32]>,
+    {
+        let settings = self.settings;
+        let (mut min_len, mut max_len) = (usize::MAX, 0);
+        for len in inputs
+            .iter_mut()
+            .map(|b| b.as_mut().len())
+            .chain(outputs.iter_mut().map(|b| b.as_mut().len()))
+        {
+            min_len = min_len.min(len);
+            max_len = max_len.max(len);
+        }
+        let channels = settings.channels as usize;
+        if inputs.len() != channels
+            || outputs.len() != channels
+            || min_len != max_len
+            || min_len == 0
+            || max_len > settings.max_block as usize
+        {
+            return Err(HostError::Buffers {
+                channels: settings.channels,
+                inputs: inputs.len(),
+                outputs: outputs.len(),
+                min_len,
+                max_len,
+                max_block: settings.max_block,
+            });
+        }
+        let audio_in = self.inputs.with_input_buffers([AudioPortBuffer {
+            latency: 0,
+            channels: AudioPortBufferType::f32_input_only(
+                inputs
+                    .iter_mut()
+                    .map(|b| InputChannel::variable(b.as_mut())),
+            ),
+        }]);
+        let mut audio_out = self.outputs.with_output_buffers([AudioPortBuffer {
+            latency: 0,
+            channels: AudioPortBufferType::f32_output_only(outputs.iter_mut().map(|b| b.as_mut())),
+        }]);
+        let status = self.processor.process(
+            &audio_in,
+            &mut audio_out,
+            &InputEvents::empty(),
+            &mut OutputEvents::void(),
+            Some(self.steady_time),
+            None,
+        )?;
+        self.steady_time += max_len as u64;
+        Ok(status)
+    }
+}
+
+/// The audio processor of an active [`WeftPlugin`], out for use on another thread (the
+/// host's audio thread). Give it back with [`WeftPlugin::attach_audio`] before deactivating;
+/// dropped instead, the instance cannot deactivate and leaks (as clack-host does).
+pub struct DetachedAudio {
+    side: AudioSide,
+    /// Which activation it belongs to (see [`WeftPlugin::attach_audio`]).
+    activation: u64,
+}
+
+impl DetachedAudio {
+    /// Processes one block, as [`WeftPlugin::process`] does.
+    pub fn process<I, O>(
+        &mut self,
+        inputs: &mut [I],
+        outputs: &mut [O],
+    ) -> Result<ProcessStatus, HostError>
+    where
+        I: AsMut<[f32]>,
+        O: AsMut<[f32]>,
+    {
+        self.side.process(inputs, outputs)
+    }
+
+    /// The settings of the activation.
+    pub fn settings(&self) -> Settings {
+        self.side.settings
+    }
+}
+
+/// What exists only while the plugin is active.
+struct Active {
+    /// `None` while detached ([`WeftPlugin::detach_audio`]).
+    audio: Option<AudioSide>,
+    settings: Settings,
+    /// A number unique to this activation in this process.
+    activation: u64,
     claim: SnapshotClaim,
+}
+
+/// Numbers activations, so a [`DetachedAudio`] only goes back where it came from.
+static ACTIVATIONS: AtomicU64 = AtomicU64::new(0);
+
+/// The size of an open editor, physical pixels (the X11 API's unit).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct EditorSize {
+    /// Width, pixels.
+    pub width_px: u32,
+    /// Height, pixels.
+    pub height_px: u32,
 }
 
 /// One instance of the Weft plugin in this host.
 pub struct WeftPlugin {
     instance: PluginInstance<WeftHost>,
     active: Option<Active>,
+    editor_open: bool,
 }
 
 impl WeftPlugin {
@@ -495,6 +715,7 @@ impl WeftPlugin {
         Ok(Self {
             instance,
             active: None,
+            editor_open: false,
         })
     }
 
@@ -636,13 +857,41 @@ impl WeftPlugin {
         };
         let channels = settings.channels as usize;
         self.active = Some(Active {
-            processor,
+            audio: Some(AudioSide {
+                processor,
+                settings,
+                inputs: AudioPorts::with_capacity(channels, 1),
+                outputs: AudioPorts::with_capacity(channels, 1),
+                steady_time: 0,
+            }),
             settings,
-            inputs: AudioPorts::with_capacity(channels, 1),
-            outputs: AudioPorts::with_capacity(channels, 1),
-            steady_time: 0,
+            activation: ACTIVATIONS.fetch_add(1, Ordering::Relaxed),
             claim,
         });
+        Ok(())
+    }
+
+    /// Hands the started audio processor out, for another thread to call
+    /// [`DetachedAudio::process`] while this thread makes main-thread calls (the editor). Until
+    /// [`WeftPlugin::attach_audio`], [`WeftPlugin::process`] and [`WeftPlugin::deactivate`]
+    /// fail with [`HostError::AudioDetached`].
+    pub fn detach_audio(&mut self) -> Result<DetachedAudio, HostError> {
+        let active = self.active.as_mut().ok_or(HostError::NotActive)?;
+        let side = active.audio.take().ok_or(HostError::AudioDetached)?;
+        Ok(DetachedAudio {
+            side,
+            activation: active.activation,
+        })
+    }
+
+    /// Takes back the processor [`WeftPlugin::detach_audio`] handed out. A processor of another
+    /// instance or activation is refused ([`HostError::ForeignAudio`]) and dropped.
+    pub fn attach_audio(&mut self, audio: DetachedAudio) -> Result<(), HostError> {
+        let active = self.active.as_mut().ok_or(HostError::NotActive)?;
+        if active.audio.is_some() || audio.activation != active.activation {
+            return Err(HostError::ForeignAudio);
+        }
+        active.audio = Some(audio.side);
         Ok(())
     }
 
@@ -658,60 +907,21 @@ impl WeftPlugin {
         O: AsMut<[f32]>,
     {
         let active = self.active.as_mut().ok_or(HostError::NotActive)?;
-        let settings = active.settings;
-        let (mut min_len, mut max_len) = (usize::MAX, 0);
-        for len in inputs
-            .iter_mut()
-            .map(|b| b.as_mut().len())
-            .chain(outputs.iter_mut().map(|b| b.as_mut().len()))
-        {
-            min_len = min_len.min(len);
-            max_len = max_len.max(len);
-        }
-        let channels = settings.channels as usize;
-        if inputs.len() != channels
-            || outputs.len() != channels
-            || min_len != max_len
-            || min_len == 0
-            || max_len > settings.max_block as usize
-        {
-            return Err(HostError::Buffers {
-                channels: settings.channels,
-                inputs: inputs.len(),
-                outputs: outputs.len(),
-                min_len,
-                max_len,
-                max_block: settings.max_block,
-            });
-        }
-        let audio_in = active.inputs.with_input_buffers([AudioPortBuffer {
-            latency: 0,
-            channels: AudioPortBufferType::f32_input_only(
-                inputs
-                    .iter_mut()
-                    .map(|b| InputChannel::variable(b.as_mut())),
-            ),
-        }]);
-        let mut audio_out = active.outputs.with_output_buffers([AudioPortBuffer {
-            latency: 0,
-            channels: AudioPortBufferType::f32_output_only(outputs.iter_mut().map(|b| b.as_mut())),
-        }]);
-        let status = active.processor.process(
-            &audio_in,
-            &mut audio_out,
-            &InputEvents::empty(),
-            &mut OutputEvents::void(),
-            Some(active.steady_time),
-            None,
-        )?;
-        active.steady_time += max_len as u64;
-        Ok(status)
+        active
+            .audio
+            .as_mut()
+            .ok_or(HostError::AudioDetached)?
+            .process(inputs, outputs)
     }
 
     /// Stops processing, deactivates, and returns the snapshot the plugin wrote.
     pub fn deactivate(&mut self) -> Result<Snapshot, HostError> {
-        let active = self.active.take().ok_or(HostError::NotActive)?;
-        let stopped = active.processor.stop_processing();
+        let active = self.active.as_mut().ok_or(HostError::NotActive)?;
+        let audio = active.audio.take().ok_or(HostError::AudioDetached)?;
+        let Some(active) = self.active.take() else {
+            return Err(HostError::NotActive);
+        };
+        let stopped = audio.processor.stop_processing();
         self.instance.deactivate(stopped);
         self.pump_main_thread();
         active.claim.read()
@@ -752,12 +962,146 @@ impl WeftPlugin {
     }
 }
 
+impl WeftPlugin {
+    /// Opens the editor embedded in `parent`, as a CLAP host does on Linux: `is_api_supported`
+    /// ("x11", not floating), `create`, `set_scale(1.0)` (the X11 API counts physical pixels;
+    /// a refusal is allowed and ignored: the plugin then asks the system), `get_size`, the parent
+    /// resized to that size, `set_parent`, `show`. Main thread only (the thread that created the
+    /// instance). If a step after `create` fails, the editor is destroyed again.
+    ///
+    /// Keep `parent` until [`WeftPlugin::close_editor`]. Returns the editor's size.
+    pub fn open_editor(&mut self, parent: &ParentWindow) -> Result<EditorSize, HostError> {
+        if self.editor_open {
+            return Err(HostError::EditorOpen);
+        }
+        let config = GuiConfiguration {
+            api_type: GuiApiType::X11,
+            is_floating: false,
+        };
+        let handle = self.instance.plugin_handle();
+        let gui = handle
+            .get_extension::<PluginGui>()
+            .ok_or(HostError::MissingExtension { extension: "gui" })?;
+        if !gui.is_api_supported(&handle, config) {
+            return Err(HostError::EditorUnsupported);
+        }
+        gui.create(&handle, config)
+            .map_err(|source| HostError::Gui {
+                action: "create",
+                source,
+            })?;
+        self.editor_open = true;
+        let embedded = self.embed_editor(gui, parent);
+        if embedded.is_err() {
+            let _ = self.close_editor();
+        }
+        embedded
+    }
+
+    /// The steps of [`WeftPlugin::open_editor`] after `create`.
+    fn embed_editor(
+        &mut self,
+        gui: PluginGui,
+        parent: &ParentWindow,
+    ) -> Result<EditorSize, HostError> {
+        let handle = self.instance.plugin_handle();
+        // Refusal allowed (CLAP `gui.h`: the plugin may query the system itself).
+        let _ = gui.set_scale(&handle, 1.0);
+        let size = gui.get_size(&handle).ok_or(HostError::NoEditorSize)?;
+        parent.resize(size.width, size.height)?;
+        let window = Window::from_x11_handle(std::ffi::c_ulong::from(parent.id()));
+        set_parent(gui, &handle, window).map_err(|source| HostError::Gui {
+            action: "set_parent",
+            source,
+        })?;
+        gui.show(&handle).map_err(|source| HostError::Gui {
+            action: "show",
+            source,
+        })?;
+        self.pump_main_thread();
+        Ok(EditorSize {
+            width_px: size.width,
+            height_px: size.height,
+        })
+    }
+
+    /// Closes the editor: `hide`, then `destroy` (even if `hide` failed), then runs the
+    /// main-thread callback if the plugin asked for one. Main thread only.
+    pub fn close_editor(&mut self) -> Result<(), HostError> {
+        if !self.editor_open {
+            return Err(HostError::EditorClosed);
+        }
+        let handle = self.instance.plugin_handle();
+        let gui = handle
+            .get_extension::<PluginGui>()
+            .ok_or(HostError::MissingExtension { extension: "gui" })?;
+        let hidden = gui.hide(&handle);
+        gui.destroy(&handle);
+        self.editor_open = false;
+        self.pump_main_thread();
+        hidden.map_err(|source| HostError::Gui {
+            action: "hide",
+            source,
+        })
+    }
+
+    /// Whether the editor is open.
+    pub fn editor_is_open(&self) -> bool {
+        self.editor_open
+    }
+
+    /// The newest editor size the plugin asked the host for (CLAP `gui.request_resize`) since the
+    /// last call, physical pixels. The host accepted it; resize the [`ParentWindow`] to match.
+    pub fn take_resize_request(&self) -> Option<EditorSize> {
+        self.instance
+            .access_shared_handler(|h| {
+                h.resize_request
+                    .lock()
+                    .unwrap_or_else(PoisonError::into_inner)
+                    .take()
+            })
+            .map(|size| EditorSize {
+                width_px: size.width,
+                height_px: size.height,
+            })
+    }
+
+    /// How often the plugin has told the host its editor was closed or lost (CLAP
+    /// `gui.closed`): a plugin that loses its window says so here.
+    pub fn editor_closed_by_plugin(&self) -> usize {
+        self.instance
+            .access_shared_handler(|h| h.gui_closed.load(Ordering::SeqCst))
+    }
+}
+
+/// `gui.set_parent` with an X11 window id.
+#[allow(unsafe_code)]
+fn set_parent(
+    gui: PluginGui,
+    handle: &PluginMainThreadHandle,
+    window: Window,
+) -> Result<(), GuiError> {
+    // SAFETY: clack-extensions asks that the window stays valid until `destroy`. An X11 window
+    // is a number on the X server, not memory of this process: the plugin only sends it to the
+    // server, which answers a stale id with a protocol error, never with undefined behaviour
+    // here. `ParentWindow`'s docs ask the caller to keep it until `close_editor`.
+    unsafe { gui.set_parent(handle, window) }
+}
+
 impl Drop for WeftPlugin {
     fn drop(&mut self) {
+        // CLAP: the editor is destroyed before the plugin.
+        if self.editor_open {
+            let _ = self.close_editor();
+        }
         // Deactivate properly, else clack-host leaks the instance and its analysis thread.
         if let Some(active) = self.active.take() {
-            let stopped = active.processor.stop_processing();
-            self.instance.deactivate(stopped);
+            // A processor still detached cannot be stopped from here: it leaks with the
+            // instance (see `DetachedAudio`).
+            if let Some(audio) = active.audio {
+                let stopped = audio.processor.stop_processing();
+                self.instance.deactivate(stopped);
+            }
             let _ = std::fs::remove_file(&active.claim.path);
         }
     }
@@ -783,5 +1127,251 @@ pub mod state_format {
         let mut bytes = (json.len() as u64).to_le_bytes().to_vec();
         bytes.extend_from_slice(&json);
         bytes
+    }
+}
+
+/// A host window on an X server, for [`WeftPlugin::open_editor`] to embed the editor in:
+/// a top-level window filled with [`ParentWindow::FILL_RGB`], mapped, on the default screen.
+/// It talks to the server over its own connection (x11rb's pure-Rust one), so it never shares
+/// a connection with the plugin. Dropping it destroys the window.
+pub struct ParentWindow {
+    conn: x11rb::rust_connection::RustConnection,
+    window: u32,
+}
+
+/// An x11rb error as a [`HostError::X11`].
+fn x11_error<E: Into<x11rb::errors::ReplyOrIdError>>(
+    action: &'static str,
+) -> impl FnOnce(E) -> HostError {
+    move |err| HostError::X11 {
+        action,
+        source: err.into(),
+    }
+}
+
+/// The masks of a TrueColor or DirectColor visual.
+#[derive(Debug, Clone, Copy)]
+struct ColourMasks {
+    red: u32,
+    green: u32,
+    blue: u32,
+}
+
+impl ColourMasks {
+    /// Scales an 8-bit value into `mask`'s bits.
+    fn put(mask: u32, value: u8) -> u32 {
+        if mask == 0 {
+            return 0;
+        }
+        let shift = mask.trailing_zeros();
+        let max = u64::from(mask >> shift);
+        let scaled = (u64::from(value) * max + 127) / 255;
+        ((scaled as u32) << shift) & mask
+    }
+
+    /// The 8-bit value of `mask`'s bits in `pixel`.
+    fn get(mask: u32, pixel: u32) -> u8 {
+        if mask == 0 {
+            return 0;
+        }
+        let shift = mask.trailing_zeros();
+        let max = u64::from(mask >> shift);
+        let value = u64::from((pixel & mask) >> shift);
+        ((value * 255 + max / 2) / max) as u8
+    }
+
+    fn encode(self, [r, g, b]: [u8; 3]) -> u32 {
+        Self::put(self.red, r) | Self::put(self.green, g) | Self::put(self.blue, b)
+    }
+
+    fn decode(self, pixel: u32) -> [u8; 3] {
+        [
+            Self::get(self.red, pixel),
+            Self::get(self.green, pixel),
+            Self::get(self.blue, pixel),
+        ]
+    }
+}
+
+impl ParentWindow {
+    /// The parent's fill, 8-bit sRGB: magenta, a colour an editor is unlikely to paint, so a
+    /// pixel that keeps it was not drawn by the editor.
+    pub const FILL_RGB: [u8; 3] = [0xff, 0x00, 0xff];
+    /// How long [`ParentWindow::open`] waits for the server to map the window.
+    pub const MAP_TIMEOUT: Duration = Duration::from_secs(10);
+
+    /// Connects to `display` (`None`: the `DISPLAY` environment variable) and opens a mapped
+    /// top-level window of `width_px` × `height_px` pixels.
+    pub fn open(display: Option<&str>, width_px: u16, height_px: u16) -> Result<Self, HostError> {
+        use x11rb::connection::Connection;
+        use x11rb::protocol::xproto::{ConnectionExt, CreateWindowAux, EventMask, WindowClass};
+        let (conn, screen_num) =
+            x11rb::connect(display).map_err(|source| HostError::X11Connect {
+                display: display.map(str::to_owned),
+                source,
+            })?;
+        let screen = &conn.setup().roots[screen_num];
+        let (root, root_visual, depth) = (screen.root, screen.root_visual, screen.root_depth);
+        let fill = Self::masks(&conn, root_visual)
+            .map_or(screen.white_pixel, |m| m.encode(Self::FILL_RGB));
+        let window = conn
+            .generate_id()
+            .map_err(x11_error("generate a window id"))?;
+        conn.create_window(
+            depth,
+            window,
+            root,
+            0,
+            0,
+            width_px.max(1),
+            height_px.max(1),
+            0,
+            WindowClass::INPUT_OUTPUT,
+            root_visual,
+            &CreateWindowAux::new()
+                .background_pixel(fill)
+                .event_mask(EventMask::STRUCTURE_NOTIFY | EventMask::EXPOSURE),
+        )
+        .map_err(x11_error("create the parent window"))?
+        .check()
+        .map_err(x11_error("create the parent window"))?;
+        let parent = Self { conn, window };
+        parent
+            .conn
+            .map_window(window)
+            .map_err(x11_error("map the parent window"))?
+            .check()
+            .map_err(x11_error("map the parent window"))?;
+        let deadline = Instant::now() + Self::MAP_TIMEOUT;
+        while !parent.is_viewable(window)? && Instant::now() < deadline {
+            std::thread::sleep(Duration::from_millis(5));
+        }
+        Ok(parent)
+    }
+
+    /// The window's X11 id.
+    pub fn id(&self) -> u32 {
+        self.window
+    }
+
+    /// Resizes the window, pixels.
+    pub fn resize(&self, width_px: u32, height_px: u32) -> Result<(), HostError> {
+        use x11rb::protocol::xproto::{ConfigureWindowAux, ConnectionExt};
+        self.conn
+            .configure_window(
+                self.window,
+                &ConfigureWindowAux::new()
+                    .width(width_px.max(1))
+                    .height(height_px.max(1)),
+            )
+            .map_err(x11_error("resize the parent window"))?
+            .check()
+            .map_err(x11_error("resize the parent window"))
+    }
+
+    /// The windows directly inside this one (the embedded editor's, while it is open).
+    pub fn children(&self) -> Result<Vec<u32>, HostError> {
+        use x11rb::protocol::xproto::ConnectionExt;
+        Ok(self
+            .conn
+            .query_tree(self.window)
+            .map_err(x11_error("list the parent's children"))?
+            .reply()
+            .map_err(x11_error("list the parent's children"))?
+            .children)
+    }
+
+    /// Whether `window` is mapped and all its ancestors are (X11 `MapState::VIEWABLE`).
+    pub fn is_viewable(&self, window: u32) -> Result<bool, HostError> {
+        use x11rb::protocol::xproto::{ConnectionExt, MapState};
+        let attributes = self
+            .conn
+            .get_window_attributes(window)
+            .map_err(x11_error("read window attributes"))?
+            .reply()
+            .map_err(x11_error("read window attributes"))?;
+        Ok(attributes.map_state == MapState::VIEWABLE)
+    }
+
+    /// The colour of pixel (`x_px`, `y_px`) of `window` (this one or one inside it), 8-bit
+    /// RGB, read back from the server (X11 `GetImage`). The window must be viewable and use a
+    /// TrueColor or DirectColor visual with 24 or 32 bits per pixel.
+    pub fn pixel_rgb(&self, window: u32, x_px: i16, y_px: i16) -> Result<[u8; 3], HostError> {
+        use x11rb::connection::Connection;
+        use x11rb::protocol::xproto::{ConnectionExt, ImageFormat, ImageOrder};
+        let visual = self
+            .conn
+            .get_window_attributes(window)
+            .map_err(x11_error("read window attributes"))?
+            .reply()
+            .map_err(x11_error("read window attributes"))?
+            .visual;
+        let masks = Self::masks(&self.conn, visual).ok_or(HostError::X11Pixels {
+            window,
+            reason: "not a TrueColor or DirectColor visual",
+        })?;
+        let image = self
+            .conn
+            .get_image(ImageFormat::Z_PIXMAP, window, x_px, y_px, 1, 1, u32::MAX)
+            .map_err(x11_error("read a pixel"))?
+            .reply()
+            .map_err(x11_error("read a pixel"))?;
+        let setup = self.conn.setup();
+        let bits = setup
+            .pixmap_formats
+            .iter()
+            .find(|f| f.depth == image.depth)
+            .map(|f| f.bits_per_pixel);
+        let bytes = match bits {
+            Some(24) => 3,
+            Some(32) => 4,
+            _ => {
+                return Err(HostError::X11Pixels {
+                    window,
+                    reason: "not 24 or 32 bits per pixel",
+                });
+            }
+        };
+        let raw = image.data.get(..bytes).ok_or(HostError::X11Pixels {
+            window,
+            reason: "short image",
+        })?;
+        let pixel = if setup.image_byte_order == ImageOrder::LSB_FIRST {
+            raw.iter()
+                .rev()
+                .fold(0_u32, |p, &b| (p << 8) | u32::from(b))
+        } else {
+            raw.iter().fold(0_u32, |p, &b| (p << 8) | u32::from(b))
+        };
+        Ok(masks.decode(pixel))
+    }
+
+    /// The colour masks of `visual`, if it is TrueColor or DirectColor.
+    fn masks(conn: &x11rb::rust_connection::RustConnection, visual: u32) -> Option<ColourMasks> {
+        use x11rb::connection::Connection;
+        use x11rb::protocol::xproto::VisualClass;
+        conn.setup()
+            .roots
+            .iter()
+            .flat_map(|screen| &screen.allowed_depths)
+            .flat_map(|depth| &depth.visuals)
+            .find(|v| v.visual_id == visual)
+            .filter(|v| matches!(v.class, VisualClass::TRUE_COLOR | VisualClass::DIRECT_COLOR))
+            .map(|v| ColourMasks {
+                red: v.red_mask,
+                green: v.green_mask,
+                blue: v.blue_mask,
+            })
+    }
+}
+
+impl Drop for ParentWindow {
+    fn drop(&mut self) {
+        use x11rb::connection::Connection;
+        use x11rb::protocol::xproto::ConnectionExt;
+        if let Ok(cookie) = self.conn.destroy_window(self.window) {
+            let _ = cookie.check();
+        }
+        let _ = self.conn.flush();
     }
 }
