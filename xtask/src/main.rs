@@ -10,6 +10,7 @@
 
 #![forbid(unsafe_code)]
 
+mod bench_cli;
 mod bench_timbre;
 mod live;
 mod palette;
@@ -32,6 +33,7 @@ usage: cargo xtask <task>
   live                      run the standalone panel on the default input (or a demo signal)
   shot [--out DIR]          render every panel view under Xvfb into PNGs (default shots/)
   bench-timbre              time the timbre descriptors against librosa on a 3-minute file
+  bench-cli                 realtime factor of `weft analyze` on a folder of 20 3-minute files
   palette [--check]         regenerate the built-in palette from FluidR3_GM and espeak-ng
   soak [--short]            the plugin in the test host: 2 h offline + 10 min real time
                             (--short: 5 min + 20 s, the CI form)
@@ -51,6 +53,7 @@ fn main() -> Result<()> {
         "live" => live::run(),
         "shot" => shot::run(&shot::Options::parse(&rest)?),
         "bench-timbre" => bench_timbre::run(),
+        "bench-cli" => bench_cli::run(),
         "palette" => palette::run(&rest),
         "soak" => soak::run(&rest),
         "" | "help" | "--help" | "-h" => {
