@@ -107,7 +107,10 @@ impl AnalysisSpec {
         column_s: 0.05,
         stack: 3,
         beta: 1.0,
-        iterations: 30,
+        // 20 updates at most: on 40 held-out mixes (`weft palette check --seed 1 --mixes 40`)
+        // the amount stage with true presence scored 12.66 % against 12.63 % at 30, and ran
+        // about 20 % faster.
+        iterations: 20,
         presence_context_s: 0.75,
         unexplained_tolerance: 0.15,
     };
