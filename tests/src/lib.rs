@@ -233,6 +233,17 @@ pub enum HostError {
     },
 }
 
+/// An error with its whole chain of causes, `outer: inner: …`, for test failure messages.
+pub fn describe(err: &dyn std::error::Error) -> String {
+    let mut text = err.to_string();
+    let mut cause = err.source();
+    while let Some(c) = cause {
+        text.push_str(&format!(": {c}"));
+        cause = c.source();
+    }
+    text
+}
+
 /// The workspace root (this crate's parent folder).
 pub fn workspace_root() -> PathBuf {
     let here = Path::new(env!("CARGO_MANIFEST_DIR"));

@@ -31,7 +31,6 @@
 //! it).
 
 use clack_host::prelude::ProcessStatus;
-use std::error::Error;
 use std::f64::consts::TAU;
 use std::io::Read;
 use std::ops::RangeInclusive;
@@ -40,7 +39,8 @@ use std::process::{Child, Command, ExitStatus, Stdio};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 use weft_tests::{
-    DetachedAudio, HostError, ParentWindow, Settings, WeftPlugin, snapshot_dir, workspace_root,
+    DetachedAudio, HostError, ParentWindow, Settings, WeftPlugin, describe, snapshot_dir,
+    workspace_root,
 };
 
 /// This file's test; the child runs exactly it.
@@ -86,17 +86,6 @@ const AMPLITUDE: f64 = 0.5;
 const PERIODS_PER_2048: f64 = 46.0;
 /// Tolerance of the level reading against the closed form, dB (as the host grid's).
 const LEVEL_TOLERANCE_DB: f64 = 0.05;
-
-/// An error with its whole chain of causes.
-fn describe(err: &dyn Error) -> String {
-    let mut text = err.to_string();
-    let mut cause = err.source();
-    while let Some(c) = cause {
-        text.push_str(&format!(": {c}"));
-        cause = c.source();
-    }
-    text
-}
 
 /// The value, or a panic naming `what` failed and why.
 fn or_panic<T>(result: Result<T, HostError>, what: &str) -> T {

@@ -10,10 +10,9 @@
 
 use rand::rngs::SmallRng;
 use rand::{Rng, RngCore, SeedableRng};
-use std::error::Error;
 use std::fmt;
 use std::time::Instant;
-use weft_tests::{Settings, Snapshot, WeftPlugin, state_format};
+use weft_tests::{Settings, Snapshot, WeftPlugin, describe, state_format};
 
 /// Block sizes of the grid, frames (1 and a prime-ish 333 catch framing bugs; 16384 is the
 /// largest block common hosts use).
@@ -93,17 +92,6 @@ fn cells(rate_hz: u32) -> impl Iterator<Item = Cell> {
             channels,
         })
     })
-}
-
-/// An error with its whole chain of causes.
-fn describe(err: &dyn Error) -> String {
-    let mut text = err.to_string();
-    let mut cause = err.source();
-    while let Some(c) = cause {
-        text.push_str(&format!(": {c}"));
-        cause = c.source();
-    }
-    text
 }
 
 fn new_plugin() -> WeftPlugin {

@@ -9,27 +9,15 @@
 //!
 //! Needs the bundle: run `cargo xtask bundle weft` first (the tests fail, never skip, without it).
 
-use std::error::Error;
 use std::f64::consts::TAU;
 use std::sync::{Mutex, MutexGuard, PoisonError};
 use std::time::Instant;
-use weft_tests::{Settings, Snapshot, WeftPlugin};
+use weft_tests::{Settings, Snapshot, WeftPlugin, describe};
 
 /// Tolerance of the level readings against the closed form, dB (as the host grid's).
 const LEVEL_TOLERANCE_DB: f64 = 0.05;
 /// Activation cycles of the loop test.
 const CYCLES: usize = 1_000;
-
-/// An error with its whole chain of causes.
-fn describe(err: &dyn Error) -> String {
-    let mut text = err.to_string();
-    let mut cause = err.source();
-    while let Some(c) = cause {
-        text.push_str(&format!(": {c}"));
-        cause = c.source();
-    }
-    text
-}
 
 fn new_plugin() -> WeftPlugin {
     WeftPlugin::new().unwrap_or_else(|err| panic!("cannot create the plugin: {}", describe(&err)))

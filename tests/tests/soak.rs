@@ -13,10 +13,9 @@
 //! Ignored in normal runs: `cargo xtask soak` runs it in full (2 h offline, 10 min real time),
 //! `cargo xtask soak --short` in its CI form (5 min, 20 s).
 
-use std::error::Error;
 use std::f64::consts::TAU;
 use std::time::{Duration, Instant};
-use weft_tests::{Settings, Snapshot, WeftPlugin};
+use weft_tests::{Settings, Snapshot, WeftPlugin, describe};
 
 /// Seconds of audio at offline pace (default: 2 hours).
 const OFFLINE_ENV: &str = "WEFT_SOAK_OFFLINE_S";
@@ -31,17 +30,6 @@ const SEGMENT_S: f64 = 7.0;
 const MAX_RSS_GROWTH_MIB: f64 = 32.0;
 /// Seed of the generator; printed in every failure.
 const SEED: u64 = 0x50A4_0008;
-
-/// An error with its whole chain of causes.
-fn describe(err: &dyn Error) -> String {
-    let mut text = err.to_string();
-    let mut cause = err.source();
-    while let Some(c) = cause {
-        text.push_str(&format!(": {c}"));
-        cause = c.source();
-    }
-    text
-}
 
 fn seconds_from_env(name: &str, default_s: f64) -> f64 {
     match std::env::var(name) {

@@ -14,9 +14,8 @@
 //!
 //! Needs the bundle: run `cargo xtask bundle weft` first (the tests fail, never skip, without it).
 
-use std::error::Error;
 use std::time::{Duration, Instant};
-use weft_tests::{Settings, Snapshot, WeftPlugin, snapshot_dir};
+use weft_tests::{Settings, Snapshot, WeftPlugin, describe, snapshot_dir};
 
 /// The plugin's test hook (`plugin/src/analysis.rs`, `SLOW_ANALYSIS_ENV`).
 const SLOW_ANALYSIS_ENV: &str = "WEFT_TEST_ANALYSIS_DELAY_US";
@@ -44,17 +43,6 @@ const MAX_SLOWDOWN: f64 = 5.0;
 const PERCENTILE: f64 = 0.995;
 /// Seed of the test signal; printed on failure.
 const SEED: u64 = 0x57A2_0008;
-
-/// An error with its whole chain of causes.
-fn describe(err: &dyn Error) -> String {
-    let mut text = err.to_string();
-    let mut cause = err.source();
-    while let Some(c) = cause {
-        text.push_str(&format!(": {c}"));
-        cause = c.source();
-    }
-    text
-}
 
 #[allow(unsafe_code)]
 fn set_delay(us: u64) {
