@@ -669,10 +669,43 @@ fn print_level(title: &str, l: &weft_engine::shares::check::LevelScore) {
     );
 }
 
+/// Where each family's energy goes when it plays alone.
+fn print_alone(r: &CheckReport) {
+    if r.alone.is_empty() {
+        return;
+    }
+    println!(
+        "where a family's energy goes when it plays alone (windows where it holds >= {:.0} %)",
+        100.0 * weft_engine::shares::check::ALONE_SHARE
+    );
+    println!(
+        "{:<24} {:>7} {:>7} {:>7} {:>7}  given instead to (two stages)",
+        "family", "windows", "truth %", "kept %", "NMF %"
+    );
+    for s in &r.alone {
+        let takers: Vec<String> = s
+            .taken_by
+            .iter()
+            .map(|(name, pct)| format!("{name} {pct:.0} %"))
+            .collect();
+        println!(
+            "{:<24} {:>7} {:>7.1} {:>7.1} {:>7.1}  {}",
+            s.name,
+            s.windows,
+            s.truth_pct,
+            s.kept_pct,
+            s.nmf_kept_pct,
+            takers.join(", ")
+        );
+    }
+    println!();
+}
+
 fn print_report(r: &CheckReport) {
     println!("{} held-out mixes, {} windows of 1 s\n", r.mixes, r.windows);
     print_level("family", &r.family);
     print_level("section", &r.section);
+    print_alone(r);
     println!("mean unexplained share: {:.3}", r.unexplained_mean);
     println!(
         "realtime factor: {:.0}x (both stages and the NMF-alone baseline, one thread: {:.2} % of one core)",

@@ -77,4 +77,17 @@ fn small_fixed_seed_check_meets_the_measured_bounds() {
         assert!(j.get(key).is_some(), "missing key {key}");
     }
     assert_eq!(j["per_family"].as_object().map(|o| o.len()), Some(16));
+    // Where a lone family's energy goes: what it keeps and what others take add up to no more
+    // than the whole.
+    assert!(
+        !r.alone.is_empty(),
+        "seed {SEED}: no family ever played alone: {j}"
+    );
+    for a in &r.alone {
+        let taken: f64 = a.taken_by.iter().map(|(_, p)| p).sum();
+        assert!(a.windows > 0 && a.truth_pct >= 90.0, "{a:?}");
+        assert!((0.0..=100.0).contains(&a.kept_pct), "{a:?}");
+        assert!(a.kept_pct + taken <= 100.0 + 1e-6, "{a:?}");
+        assert!(j["alone"][a.name.as_str()]["kept_pct"].is_number(), "{j}");
+    }
 }

@@ -23,6 +23,13 @@ use std::time::Instant;
 
 /// The share from which a family counts as present (vocabulary: ≥ 5 % of the energy).
 pub const PRESENT_SHARE: f64 = 0.05;
+/// A family *plays alone* in a window when it holds at least this share of the energy (for the
+/// table of where a lone family's energy goes).
+pub const ALONE_SHARE: f64 = 0.9;
+/// Families listed as taking a lone family's energy: at most this many…
+const ALONE_TAKERS: usize = 3;
+/// …each with at least this mean share.
+const ALONE_TAKER_MIN: f64 = 0.01;
 /// Windows whose mix is quieter than this (dBFS RMS) are not scored.
 pub const QUIET_WINDOW_DB: f64 = -60.0;
 
@@ -275,6 +282,27 @@ pub struct LevelScore {
     pub groups: Vec<GroupScore>,
 }
 
+/// Where one family's energy goes when it plays alone: the mean estimate over the windows
+/// where it holds ≥ [`ALONE_SHARE`] of the energy (a row of a confusion matrix of shares).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct AloneScore {
+    /// The family.
+    pub name: String,
+    /// Windows where it plays alone.
+    pub windows: usize,
+    /// Its true share there, mean, %.
+    pub truth_pct: f64,
+    /// The share the two stages give it there, mean, %.
+    pub kept_pct: f64,
+    /// The share NMF alone gives it there, mean, %.
+    pub nmf_kept_pct: f64,
+    /// The mean *unexplained* share there (two stages), %.
+    pub unexplained_pct: f64,
+    /// The other families the two stages give most of its energy to (mean share, %), largest
+    /// first: at most three, each ≥ 1 %.
+    pub taken_by: Vec<(String, f64)>,
+}
+
 /// The whole check.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct CheckReport {
@@ -286,6 +314,9 @@ pub struct CheckReport {
     pub family: LevelScore,
     /// Section level.
     pub section: LevelScore,
+    /// Where each family's energy goes when it plays alone (families that never do are left
+    /// out).
+    pub alone: Vec<AloneScore>,
     /// Mean estimated *unexplained* share.
     pub unexplained_mean: f64,
     /// Seconds of audio per second of analysis (both stages and the NMF-alone baseline, one
@@ -424,6 +455,42 @@ fn level(records: &[&WindowRecord], names: &[String], group_of: &[usize]) -> Lev
     }
 }
 
+/// Where each family's energy goes in the windows where it plays alone.
+fn alone_scores(records: &[&WindowRecord], names: &[String]) -> Vec<AloneScore> {
+    let nf = names.len();
+    let mut out = Vec::new();
+    for f in 0..nf {
+        let alone: Vec<&&WindowRecord> = records
+            .iter()
+            .filter(|r| r.truth.get(f).is_some_and(|&t| t >= ALONE_SHARE))
+            .collect();
+        if alone.is_empty() {
+            continue;
+        }
+        let n = alone.len() as f64;
+        let mean = |get: &dyn Fn(&WindowRecord) -> f64| {
+            100.0 * alone.iter().map(|r| get(r)).sum::<f64>() / n
+        };
+        let mut takers: Vec<(String, f64)> = (0..nf)
+            .filter(|&g| g != f)
+            .map(|g| (names[g].clone(), mean(&|r| r.est[g])))
+            .filter(|(_, pct)| *pct >= 100.0 * ALONE_TAKER_MIN)
+            .collect();
+        takers.sort_by(|a, b| b.1.total_cmp(&a.1));
+        takers.truncate(ALONE_TAKERS);
+        out.push(AloneScore {
+            name: names[f].clone(),
+            windows: alone.len(),
+            truth_pct: mean(&|r| r.truth[f]),
+            kept_pct: mean(&|r| r.est[f]),
+            nmf_kept_pct: mean(&|r| r.nmf[f]),
+            unexplained_pct: mean(&|r| r.est_unexplained),
+            taken_by: takers,
+        });
+    }
+    out
+}
+
 impl CheckReport {
     /// Scores the records of every mix against `palette`'s families and sections.
     pub fn new(palette: &Palette, mixes: &[MixRecord]) -> Self {
@@ -438,6 +505,7 @@ impl CheckReport {
             windows: records.len(),
             family: level(&records, &fam_names, &identity),
             section: level(&records, palette.sections(), &section_of),
+            alone: alone_scores(&records, &fam_names),
             unexplained_mean: records.iter().map(|r| r.est_unexplained).sum::<f64>()
                 / records.len().max(1) as f64,
             realtime_factor: if time > 0.0 { audio / time } else { 0.0 },
@@ -489,6 +557,58 @@ impl CheckReport {
             "realtime_factor": self.realtime_factor,
             "per_family": groups(&self.family),
             "per_section": groups(&self.section),
+            "alone": self.alone.iter().map(|s| (s.name.clone(), serde_json::json!({
+                "windows": s.windows,
+                "truth_pct": s.truth_pct,
+                "kept_pct": s.kept_pct,
+                "nmf_kept_pct": s.nmf_kept_pct,
+                "unexplained_pct": s.unexplained_pct,
+                "taken_by": s.taken_by.iter().map(|(n, p)| serde_json::json!({"family": n, "pct": p})).collect::<Vec<_>>(),
+            }))).collect::<serde_json::Map<_, _>>(),
         })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn window(truth: [f64; 3], est: [f64; 3], u: f64, nmf: [f64; 3]) -> WindowRecord {
+        WindowRecord {
+            truth: truth.to_vec(),
+            est: est.to_vec(),
+            est_unexplained: u,
+            nmf: nmf.to_vec(),
+            nmf_unexplained: 0.0,
+        }
+    }
+
+    #[test]
+    fn a_lone_family_s_energy_is_traced_to_the_families_that_took_it() {
+        let names: Vec<String> = ["a", "b", "c"].iter().map(|s| s.to_string()).collect();
+        let w = [
+            window([0.95, 0.05, 0.0], [0.7, 0.2, 0.05], 0.05, [0.3, 0.4, 0.3]),
+            window([1.0, 0.0, 0.0], [0.9, 0.0, 0.1], 0.0, [0.5, 0.5, 0.0]),
+            // Not alone: b holds half.
+            window([0.5, 0.5, 0.0], [0.0, 1.0, 0.0], 0.0, [0.0, 1.0, 0.0]),
+            // c alone, all its energy kept; b gets 0.5 % (below the listing floor).
+            window([0.0, 0.0, 1.0], [0.0, 0.005, 0.995], 0.0, [0.0, 0.0, 1.0]),
+        ];
+        let records: Vec<&WindowRecord> = w.iter().collect();
+        let s = alone_scores(&records, &names);
+        assert_eq!(s.len(), 2, "b never plays alone");
+        let a = &s[0];
+        assert_eq!((a.name.as_str(), a.windows), ("a", 2));
+        let close = |x: f64, y: f64| (x - y).abs() < 1e-9;
+        assert!(close(a.truth_pct, 97.5), "{}", a.truth_pct);
+        assert!(close(a.kept_pct, 80.0), "{}", a.kept_pct);
+        assert!(close(a.nmf_kept_pct, 40.0), "{}", a.nmf_kept_pct);
+        assert!(close(a.unexplained_pct, 2.5), "{}", a.unexplained_pct);
+        let takers: Vec<&str> = a.taken_by.iter().map(|(n, _)| n.as_str()).collect();
+        assert_eq!(takers, ["b", "c"], "largest first");
+        assert!(close(a.taken_by[0].1, 10.0) && close(a.taken_by[1].1, 7.5));
+        let c = &s[1];
+        assert_eq!((c.name.as_str(), c.windows), ("c", 1));
+        assert!(c.taken_by.is_empty(), "0.5 % is below the 1 % floor");
     }
 }
