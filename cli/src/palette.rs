@@ -102,6 +102,10 @@ pub struct BuildOptions {
     /// L2 penalty of the presence model.
     #[arg(long, default_value_t = PresenceTraining::default().l2)]
     pub l2: f32,
+    /// β of the F-score the presence model's per-family thresholds maximise; below 1 favours
+    /// precision (a family judged present by mistake takes energy from the others).
+    #[arg(long, default_value_t = PresenceTraining::default().threshold_beta, value_parser = parse_beta)]
+    pub presence_beta: f32,
     /// Worker threads (default: all cores).
     #[arg(long)]
     pub threads: Option<usize>,
@@ -181,6 +185,13 @@ pub struct CheckArgs {
     pub threads: Option<usize>,
 }
 
+fn parse_beta(s: &str) -> Result<f32, String> {
+    match s.parse::<f32>() {
+        Ok(b) if b.is_finite() && (0.05..=20.0).contains(&b) => Ok(b),
+        _ => Err(format!("'{s}' is not a number from 0.05 to 20")),
+    }
+}
+
 fn parse_pair(s: &str) -> Result<(String, String), String> {
     s.split_once('=')
         .map(|(a, b)| (a.trim().to_owned(), b.trim().to_owned()))
@@ -240,6 +251,7 @@ fn plan_from(o: &BuildOptions) -> BuildPlan {
             hidden: o.hidden,
             epochs: o.epochs,
             l2: o.l2,
+            threshold_beta: o.presence_beta,
             ..PresenceTraining::default()
         },
         seed: o.seed,

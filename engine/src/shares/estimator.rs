@@ -20,6 +20,7 @@
 //! the command-line tool feeds a whole file, and neither allocates per frame.
 
 use super::columns::ColumnStream;
+use super::fine::{FINE_VALUES, FineSpectrum};
 use super::nmf::{ActivationSolver, Dictionary, SolveSettings, Start};
 use super::presence::{PresenceContext, PresenceModel};
 use crate::bands::BandsError;
@@ -171,6 +172,8 @@ pub struct SharesEstimator {
     tolerance: f32,
     model: Option<PresenceModel>,
     context: PresenceContext,
+    fine: FineSpectrum,
+    fine_values: [f32; FINE_VALUES],
     mode: SharesMode,
     known: [bool; MAX_FAMILIES],
     silence_energy: f32,
@@ -243,6 +246,8 @@ impl SharesEstimator {
             sections: palette.sections().len().min(MAX_SECTIONS),
             tolerance: spec.unexplained_tolerance as f32,
             context: PresenceContext::new(families, atoms, context_len),
+            fine: FineSpectrum::new(framing.frame_len / 2 + 1, sample_rate_hz),
+            fine_values: [0.0; FINE_VALUES],
             model,
             mode: settings.mode,
             known: [false; MAX_FAMILIES],
@@ -319,6 +324,7 @@ impl SharesEstimator {
     pub fn reset(&mut self) {
         self.columns.reset();
         self.context.reset();
+        self.fine.reset();
         self.h_full.fill(0.0);
         self.h_amount.fill(0.0);
         self.ema_num = [0.0; MAX_FAMILIES];
@@ -383,9 +389,11 @@ impl SharesEstimator {
     /// Feeds one frame's one-sided power spectrum; returns the update when a column completed.
     /// Does not allocate.
     pub fn process_power(&mut self, power: &[f32]) -> Option<&SharesUpdate> {
+        self.fine.add(power);
         if !self.columns.push_power(power) {
             return None;
         }
+        self.fine.finish_column(&mut self.fine_values);
         self.estimate();
         Some(&self.update)
     }
@@ -446,6 +454,7 @@ impl SharesEstimator {
                 &self.h_full,
                 &self.fam_energy,
                 0.0,
+                &self.fine_values,
             );
             self.update.time_s = time_s;
             self.update.energy = 0.0;
@@ -482,6 +491,7 @@ impl SharesEstimator {
             &self.h_full,
             &self.fam_energy,
             residual_full * total,
+            &self.fine_values,
         );
         // Stage 1: presence.
         let mut presence = [0.0_f32; MAX_FAMILIES];

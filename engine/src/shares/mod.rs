@@ -12,6 +12,7 @@
 pub mod check;
 mod columns;
 mod estimator;
+pub mod fine;
 pub mod nmf;
 pub mod presence;
 mod tracker;
