@@ -20,8 +20,10 @@ pub const SEED: &str = "1";
 /// mixes (`weft palette check --seed 1 --mixes 60`, energy misattributed per family): more and
 /// shorter training mixes and one hidden layer of 64 units beat logistic regression on 1 500
 /// mixes of 3 s (50.6 %): 4 000 × 3 s 45.1 %, 8 000 × 3 s 41.5 %, 16 000 × 1.5 s 40.6 %; 128
-/// hidden units were no better than 64 (43.0 % at 8 000 × 3 s). `weft palette learn` keeps the
-/// lighter defaults, which a user's own folders can afford.
+/// hidden units were no better than 64 (43.0 % at 8 000 × 3 s). With the fine-resolution
+/// presence features (schema presence-v2) and thresholds that favour precision (F_β, β = 0.5,
+/// the default) the same training reached 33.5 % (seeds 2 and 3: 36.2 %, 34.8 %). `weft palette
+/// learn` keeps the lighter defaults, which a user's own folders can afford.
 const PRESENCE_TRAINING: [&str; 8] = [
     "--mixes",
     "24000",
