@@ -24,7 +24,8 @@
 //! (a multi-layer perceptron, D. E. Rumelhart, G. E. Hinton and R. J. Williams, Nature 1986),
 //! or no hidden layer, which is per-family logistic regression. Trained with Adam (D. P.
 //! Kingma and J. Ba, ICLR 2015) on class-balanced binary cross-entropy; each family's decision
-//! threshold maximises F1 on the last fifth of the training rows (whole mixes the fit never saw).
+//! threshold maximises F_β ([`DEFAULT_THRESHOLD_BETA`]) on the last fifth of the training rows
+//! (whole mixes the fit never saw).
 
 use super::fine::FINE_VALUES;
 use crate::scene::SceneRng;
