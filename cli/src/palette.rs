@@ -15,6 +15,7 @@ use weft_engine::scene::{
     ClipBank, Composer, FamilyVoicing, Role, SoundFontRenderer, VoiceSource, general_midi_voicings,
 };
 use weft_engine::shares::check::CheckReport;
+use weft_engine::shares::presence::MAX_HIDDEN;
 use weft_engine::shares::{PresenceTraining, SharesMode};
 
 /// The SoundFont Debian's `fluid-soundfont-gm` installs.
@@ -99,6 +100,10 @@ pub struct BuildOptions {
     /// Training epochs of the presence model.
     #[arg(long, default_value_t = PresenceTraining::default().epochs)]
     pub epochs: usize,
+    /// Networks in the presence model, fitted from different starts, whose logits are
+    /// averaged (their hidden units together at most 256).
+    #[arg(long, default_value_t = PresenceTraining::default().members, value_parser = parse_members)]
+    pub members: usize,
     /// L2 penalty of the presence model.
     #[arg(long, default_value_t = PresenceTraining::default().l2)]
     pub l2: f32,
@@ -192,6 +197,13 @@ fn parse_beta(s: &str) -> Result<f32, String> {
     }
 }
 
+fn parse_members(s: &str) -> Result<usize, String> {
+    match s.parse::<usize>() {
+        Ok(m) if (1..=16).contains(&m) => Ok(m),
+        _ => Err(format!("'{s}' is not a whole number from 1 to 16")),
+    }
+}
+
 fn parse_pair(s: &str) -> Result<(String, String), String> {
     s.split_once('=')
         .map(|(a, b)| (a.trim().to_owned(), b.trim().to_owned()))
@@ -202,8 +214,14 @@ fn parse_pair(s: &str) -> Result<(String, String), String> {
 /// Runs a palette command.
 pub fn run(args: PaletteArgs) -> Result<()> {
     match args.command {
-        PaletteCommand::Learn(a) => learn(&a),
-        PaletteCommand::Render(a) => render(&a),
+        PaletteCommand::Learn(a) => {
+            plan_from(&a.build)?;
+            learn(&a)
+        }
+        PaletteCommand::Render(a) => {
+            plan_from(&a.build)?;
+            render(&a)
+        }
         PaletteCommand::Check(a) => {
             let report = check(&a)?;
             if a.json {
@@ -228,7 +246,15 @@ fn threads(t: Option<usize>) -> usize {
         .max(1)
 }
 
-fn plan_from(o: &BuildOptions) -> BuildPlan {
+fn plan_from(o: &BuildOptions) -> Result<BuildPlan> {
+    if o.hidden * o.members > MAX_HIDDEN {
+        bail!(
+            "--hidden {} with --members {} makes {} hidden units; a palette holds at most {MAX_HIDDEN}",
+            o.hidden,
+            o.members,
+            o.hidden * o.members
+        );
+    }
     let analysis = AnalysisSpec {
         bands: o.bands,
         stack: o.stack,
@@ -238,7 +264,7 @@ fn plan_from(o: &BuildOptions) -> BuildPlan {
         unexplained_tolerance: o.tolerance,
         ..AnalysisSpec::DEFAULT
     };
-    BuildPlan {
+    Ok(BuildPlan {
         sample_rate_hz: RENDER_RATE_HZ,
         analysis,
         learn: LearnSettings {
@@ -250,6 +276,7 @@ fn plan_from(o: &BuildOptions) -> BuildPlan {
         presence: PresenceTraining {
             hidden: o.hidden,
             epochs: o.epochs,
+            members: o.members,
             l2: o.l2,
             threshold_beta: o.presence_beta,
             ..PresenceTraining::default()
@@ -257,7 +284,7 @@ fn plan_from(o: &BuildOptions) -> BuildPlan {
         seed: o.seed,
         threads: threads(o.threads),
         ..BuildPlan::default()
-    }
+    })
 }
 
 fn progress(msg: &str) {
@@ -453,7 +480,7 @@ fn learn(a: &LearnArgs) -> Result<()> {
     }
     let voicings: Vec<FamilyVoicing> = names.iter().map(|n| clip_voicing(n)).collect();
     let composer = Composer::new(voicings, bank.counts(), 1.0);
-    let plan = plan_from(&a.build);
+    let plan = plan_from(&a.build)?;
     let provenance = Provenance {
         weft_version: env!("CARGO_PKG_VERSION").to_owned(),
         source: format!("folders: {}", names.join(", ")),
@@ -517,7 +544,7 @@ fn render(a: &RenderArgs) -> Result<()> {
     let (voicings, bank, voice_source) = soundfont_scene(a.voice, 0)?;
     let composer = Composer::new(voicings, bank.counts(), 0.6);
     let (families, sections) = default_families();
-    let plan = plan_from(&a.build);
+    let plan = plan_from(&a.build)?;
     let provenance = Provenance {
         weft_version: env!("CARGO_PKG_VERSION").to_owned(),
         source: format!(

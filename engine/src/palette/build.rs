@@ -378,13 +378,15 @@ pub fn build_palette(
     }
     let features = feature_count(nf, palette.atom_counts().iter().sum());
     progress(&format!(
-        "training the presence model on {} rows ({} features, {} hidden units)",
+        "training the presence model on {} rows ({} features, {} × {} hidden units)",
         x.len() / features,
         features,
+        plan.presence.members.max(1),
         plan.presence.hidden
     ));
     let mut training = plan.presence;
     training.seed = SceneRng::derive(plan.seed, 77).next_u64();
+    training.threads = plan.threads;
     let model = train_presence(&x, features, &y, nf, &training);
     let palette = palette.with_presence(Some(model))?;
     // Calibrate the unexplained tolerance: the energy-weighted quantile TOLERANCE_QUANTILE of

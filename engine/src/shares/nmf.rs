@@ -522,8 +522,9 @@ impl pulp::WithSimd for Reconstruct<'_> {
     }
 }
 
+/// Dot product of two slices of the same length.
 #[inline]
-fn dot(a: &[f32], b: &[f32]) -> f32 {
+pub(crate) fn dot(a: &[f32], b: &[f32]) -> f32 {
     // Sixteen partial sums: several vector registers of independent sums, so the loop is not
     // bound by one add chain's latency (the compiler vectorises without reassociating a sum).
     const LANES: usize = 16;

@@ -23,11 +23,15 @@
 //! **Model**: one hidden layer (ReLU) shared by all families and one sigmoid output per family
 //! (a multi-layer perceptron, D. E. Rumelhart, G. E. Hinton and R. J. Williams, Nature 1986),
 //! or no hidden layer, which is per-family logistic regression. Trained with Adam (D. P.
-//! Kingma and J. Ba, ICLR 2015) on class-balanced binary cross-entropy; each family's decision
-//! threshold maximises F_β ([`DEFAULT_THRESHOLD_BETA`]) on the last fifth of the training rows
-//! (whole mixes the fit never saw).
+//! Kingma and J. Ba, ICLR 2015) on class-balanced binary cross-entropy, the step size decaying
+//! along a half cosine; each family's decision threshold maximises F_β
+//! ([`DEFAULT_THRESHOLD_BETA`]) on the last fifth of the training rows (whole mixes the fit never
+//! saw). Several networks fitted from different starts can be averaged (an ensemble, T. G.
+//! Dietterich, *Ensemble Methods in Machine Learning*, 2000): their mean logit is itself one
+//! network with all their hidden units, so the palette stores and runs it as one.
 
 use super::fine::FINE_VALUES;
+use super::nmf::dot;
 use crate::scene::SceneRng;
 use serde::{Deserialize, Serialize};
 
@@ -165,7 +169,7 @@ impl PresenceModel {
             let hbuf = &mut rest[..self.hidden];
             for (j, hv) in hbuf.iter_mut().enumerate() {
                 let row = &self.w1[j * d..(j + 1) * d];
-                let a = self.b1[j] + row.iter().zip(z.iter()).map(|(w, v)| w * v).sum::<f32>();
+                let a = self.b1[j] + dot(row, z);
                 *hv = a.max(0.0);
             }
             hbuf
@@ -173,7 +177,7 @@ impl PresenceModel {
         let n = inputs.len();
         for (f, o) in out.iter_mut().enumerate().take(self.b2.len()) {
             let row = &self.w2[f * n..(f + 1) * n];
-            let a = self.b2[f] + row.iter().zip(inputs).map(|(w, v)| w * v).sum::<f32>();
+            let a = self.b2[f] + dot(row, inputs);
             *o = sigmoid(a);
         }
     }
@@ -212,6 +216,10 @@ pub struct PresenceTraining {
     /// the shares need: a family judged present by mistake takes energy from the others, while
     /// a missed one leaves its energy to be shared among the present families.
     pub threshold_beta: f32,
+    /// Networks fitted from different starts whose logits are averaged (1: one network).
+    pub members: usize,
+    /// Threads the members are fitted on (results do not depend on it).
+    pub threads: usize,
 }
 
 impl Default for PresenceTraining {
@@ -229,12 +237,17 @@ impl Default for PresenceTraining {
             l2: 1e-2,
             seed: 1,
             threshold_beta: DEFAULT_THRESHOLD_BETA,
+            members: 1,
+            threads: 1,
         }
     }
 }
 
 /// Trains a presence model on `rows` (row-major, `n × features`) with labels `labels`
-/// (row-major, `n × families`). Allocates; for palettes, not live use.
+/// (row-major, `n × families`). With `opts.members` above 1, that many networks are fitted from
+/// different starts and shuffles (on up to `opts.threads` threads; the result does not depend
+/// on the number) and stored as one network whose hidden layer holds all of theirs and whose
+/// output averages their logits. Allocates; for palettes, not live use.
 pub fn train_presence(
     rows: &[f32],
     features: usize,
@@ -266,90 +279,54 @@ pub fn train_presence(
     let z: Vec<f32> = (0..n * features)
         .map(|i| (rows[i] - mean[i % features]) / scale[i % features])
         .collect();
-    let mut rng = SceneRng::derive(opts.seed, 31);
     // Hold back the last fifth of the rows for the thresholds: rows arrive mix by mix, so these
     // come from mixes the fit never saw (a random split would tune on the fit's own mixes).
     let held = n / 5;
     let order: Vec<usize> = (0..n).collect();
     let (fit, tune) = order.split_at(n - held);
-    let hidden = opts.hidden.min(MAX_HIDDEN);
-    let inputs = if hidden == 0 { features } else { hidden };
-    let he = |fan_in: usize, rng: &mut SceneRng| {
-        (rng.normal() * (2.0 / fan_in.max(1) as f64).sqrt()) as f32
+    let members = opts.members.max(1);
+    let hidden = if opts.hidden == 0 {
+        0
+    } else {
+        opts.hidden.min(MAX_HIDDEN / members).max(1)
     };
-    let mut params = Params {
-        w1: (0..hidden * features)
-            .map(|_| he(features, &mut rng))
-            .collect(),
-        b1: vec![0.0; hidden],
-        w2: (0..families * inputs)
-            .map(|_| 0.5 * he(inputs, &mut rng))
-            .collect(),
-        b2: vec![0.0; families],
+    let data = FitData {
+        z: &z,
+        features,
+        labels,
+        families,
+        fit,
     };
-    // Class balance: positives weighted by (negatives / positives) per family, capped.
-    let pos_weight: Vec<f32> = (0..families)
-        .map(|f| {
-            let pos = fit
-                .iter()
-                .filter(|&&i| labels[i * families + f])
-                .count()
-                .max(1) as f32;
-            let neg = (fit.len() as f32 - pos).max(1.0);
-            (neg / pos).clamp(0.2, 20.0).sqrt()
-        })
-        .collect();
-    let mut adam = Adam::new(&params);
-    let mut fit = fit.to_vec();
-    let mut grads = params.zeros_like();
-    let mut hbuf = vec![0.0_f32; hidden];
-    let mut out = vec![0.0_f32; families];
-    let mut dh = vec![0.0_f32; hidden];
-    for _ in 0..opts.epochs {
-        rng.shuffle(&mut fit);
-        for batch in fit.chunks(opts.batch.max(1)) {
-            grads.fill(0.0);
-            for &i in batch {
-                let x = &z[i * features..(i + 1) * features];
-                forward(&params, x, features, hidden, &mut hbuf, &mut out);
-                let inp: &[f32] = if hidden == 0 { x } else { &hbuf };
-                dh.fill(0.0);
-                for f in 0..families {
-                    let y = labels[i * families + f];
-                    let wgt = if y { pos_weight[f] } else { 1.0 };
-                    let g = wgt * (out[f] - if y { 1.0 } else { 0.0 });
-                    grads.b2[f] += g;
-                    let row = &mut grads.w2[f * inputs..(f + 1) * inputs];
-                    for (gw, &v) in row.iter_mut().zip(inp) {
-                        *gw += g * v;
-                    }
-                    if hidden > 0 {
-                        for (d, &w) in dh.iter_mut().zip(&params.w2[f * inputs..(f + 1) * inputs]) {
-                            *d += g * w;
-                        }
-                    }
+    // A logistic regression is convex: members would all reach the same weights.
+    let members = if hidden == 0 { 1 } else { members };
+    let threads = opts.threads.clamp(1, members);
+    let mut fitted: Vec<Option<Params>> = vec![None; members];
+    std::thread::scope(|scope| {
+        let chunks: Vec<&mut [Option<Params>]> =
+            fitted.chunks_mut(members.div_ceil(threads)).collect();
+        let mut first = 0;
+        for chunk in chunks {
+            let data = &data;
+            let start = first;
+            first += chunk.len();
+            scope.spawn(move || {
+                for (j, slot) in chunk.iter_mut().enumerate() {
+                    *slot = Some(fit_member(data, hidden, opts, start + j));
                 }
-                if hidden > 0 {
-                    for j in 0..hidden {
-                        if hbuf[j] <= 0.0 {
-                            continue;
-                        }
-                        let g = dh[j];
-                        grads.b1[j] += g;
-                        for (gw, &v) in grads.w1[j * features..(j + 1) * features].iter_mut().zip(x)
-                        {
-                            *gw += g * v;
-                        }
-                    }
-                }
-            }
-            let inv = 1.0 / batch.len() as f32;
-            grads.scale_add_l2(inv, opts.l2, &params);
-            adam.step(&mut params, &grads, opts.learning_rate);
+            });
         }
-    }
+    });
+    let params = merge_members(
+        fitted.into_iter().flatten().collect(),
+        features,
+        hidden,
+        families,
+    );
+    let hidden = hidden * members;
     // Thresholds: maximise F_β on the held-back rows (0.5 when there are none).
     let b2 = f64::from(opts.threshold_beta.clamp(0.05, 20.0)).powi(2);
+    let mut hbuf = vec![0.0_f32; hidden];
+    let mut out = vec![0.0_f32; families];
     let mut probs = vec![0.0_f32; held * families];
     for (r, &i) in tune.iter().enumerate() {
         forward(
@@ -402,6 +379,147 @@ pub fn train_presence(
         b2: params.b2,
         thresholds,
     }
+}
+
+/// What every member of a presence model is fitted on.
+struct FitData<'a> {
+    /// Standardised rows, `n × features`.
+    z: &'a [f32],
+    features: usize,
+    labels: &'a [bool],
+    families: usize,
+    /// The rows fitted on (the rest set the thresholds).
+    fit: &'a [usize],
+}
+
+/// Fits member `member` of a presence model: its own initial weights and shuffles, drawn
+/// from `opts.seed` (member 0 from the stream a single network has always used).
+fn fit_member(data: &FitData, hidden: usize, opts: &PresenceTraining, member: usize) -> Params {
+    let FitData {
+        z,
+        features,
+        labels,
+        families,
+        fit,
+    } = *data;
+    let mut rng = SceneRng::derive(opts.seed, 31 + 1000 * member as u64);
+    let inputs = if hidden == 0 { features } else { hidden };
+    let he = |fan_in: usize, rng: &mut SceneRng| {
+        (rng.normal() * (2.0 / fan_in.max(1) as f64).sqrt()) as f32
+    };
+    let mut params = Params {
+        w1: (0..hidden * features)
+            .map(|_| he(features, &mut rng))
+            .collect(),
+        b1: vec![0.0; hidden],
+        w2: (0..families * inputs)
+            .map(|_| 0.5 * he(inputs, &mut rng))
+            .collect(),
+        b2: vec![0.0; families],
+    };
+    // Class balance: positives weighted by (negatives / positives) per family, capped.
+    let pos_weight: Vec<f32> = (0..families)
+        .map(|f| {
+            let pos = fit
+                .iter()
+                .filter(|&&i| labels[i * families + f])
+                .count()
+                .max(1) as f32;
+            let neg = (fit.len() as f32 - pos).max(1.0);
+            (neg / pos).clamp(0.2, 20.0).sqrt()
+        })
+        .collect();
+    let mut adam = Adam::new(&params);
+    let mut fit = fit.to_vec();
+    let mut grads = params.zeros_like();
+    let mut hbuf = vec![0.0_f32; hidden];
+    let mut out = vec![0.0_f32; families];
+    let mut dh = vec![0.0_f32; hidden];
+    for epoch in 0..opts.epochs {
+        // Cosine decay of the step size over the epochs, down to a twentieth (I. Loshchilov and
+        // F. Hutter, "SGDR", ICLR 2017, without restarts): the last epochs settle instead of
+        // wandering at full step.
+        let t = epoch as f32 / opts.epochs.max(1) as f32;
+        let lr = opts.learning_rate
+            * (FINAL_STEP_FRACTION
+                + (1.0 - FINAL_STEP_FRACTION) * 0.5 * (1.0 + (std::f32::consts::PI * t).cos()));
+        rng.shuffle(&mut fit);
+        for batch in fit.chunks(opts.batch.max(1)) {
+            grads.fill(0.0);
+            for &i in batch {
+                let x = &z[i * features..(i + 1) * features];
+                forward(&params, x, features, hidden, &mut hbuf, &mut out);
+                let inp: &[f32] = if hidden == 0 { x } else { &hbuf };
+                dh.fill(0.0);
+                for f in 0..families {
+                    let y = labels[i * families + f];
+                    let wgt = if y { pos_weight[f] } else { 1.0 };
+                    let g = wgt * (out[f] - if y { 1.0 } else { 0.0 });
+                    grads.b2[f] += g;
+                    let row = &mut grads.w2[f * inputs..(f + 1) * inputs];
+                    for (gw, &v) in row.iter_mut().zip(inp) {
+                        *gw += g * v;
+                    }
+                    if hidden > 0 {
+                        for (d, &w) in dh.iter_mut().zip(&params.w2[f * inputs..(f + 1) * inputs]) {
+                            *d += g * w;
+                        }
+                    }
+                }
+                if hidden > 0 {
+                    for j in 0..hidden {
+                        if hbuf[j] <= 0.0 {
+                            continue;
+                        }
+                        let g = dh[j];
+                        grads.b1[j] += g;
+                        for (gw, &v) in grads.w1[j * features..(j + 1) * features].iter_mut().zip(x)
+                        {
+                            *gw += g * v;
+                        }
+                    }
+                }
+            }
+            let inv = 1.0 / batch.len() as f32;
+            grads.scale_add_l2(inv, opts.l2, &params);
+            adam.step(&mut params, &grads, lr);
+        }
+    }
+    params
+}
+
+/// The step size of the last epoch as a fraction of [`PresenceTraining::learning_rate`].
+const FINAL_STEP_FRACTION: f32 = 0.05;
+
+/// One network equal to the members' average logit: their hidden layers side by side, each
+/// member's output weights divided by the number of members, the output biases averaged. A
+/// single member is returned as it is.
+fn merge_members(members: Vec<Params>, features: usize, hidden: usize, families: usize) -> Params {
+    if members.len() == 1 {
+        return members.into_iter().next().expect("one member");
+    }
+    let k = members.len();
+    let inv = 1.0 / k as f32;
+    let total = hidden * k;
+    let mut merged = Params {
+        w1: Vec::with_capacity(total * features),
+        b1: Vec::with_capacity(total),
+        w2: vec![0.0; families * total],
+        b2: vec![0.0; families],
+    };
+    for (m, p) in members.iter().enumerate() {
+        merged.w1.extend_from_slice(&p.w1);
+        merged.b1.extend_from_slice(&p.b1);
+        for f in 0..families {
+            let from = &p.w2[f * hidden..(f + 1) * hidden];
+            let to = &mut merged.w2[f * total + m * hidden..f * total + (m + 1) * hidden];
+            for (t, &w) in to.iter_mut().zip(from) {
+                *t = w * inv;
+            }
+            merged.b2[f] += p.b2[f] * inv;
+        }
+    }
+    merged
 }
 
 fn forward(p: &Params, x: &[f32], d: usize, hidden: usize, hbuf: &mut [f32], out: &mut [f32]) {
@@ -761,6 +879,7 @@ mod tests {
                 l2: 0.0,
                 seed: 2,
                 threshold_beta: 1.0,
+                ..PresenceTraining::default()
             };
             let m = train_presence(&rows, d, &labels, 2, &opts);
             let mut scratch = vec![0.0; 32];
@@ -784,5 +903,80 @@ mod tests {
                 assert!(acc1 < 0.85, "seed 5/2 hidden 0: {acc1}");
             }
         }
+    }
+
+    #[test]
+    fn members_average_their_logits_and_threads_change_nothing() {
+        // Two hand-made members (3 features, 2 hidden units, 2 families): the merged network's
+        // logit is the mean of theirs on any input.
+        let (d, h, f) = (3, 2, 2);
+        let member = |k: f32| Params {
+            w1: (0..h * d).map(|i| k * (i as f32 - 2.5)).collect(),
+            b1: vec![0.1 * k, -0.2],
+            w2: (0..f * h).map(|i| 0.2 * (k + i as f32)).collect(),
+            b2: vec![k, -k],
+        };
+        let (a, b) = (member(1.0), member(-0.5));
+        let merged = merge_members(vec![a.clone(), b.clone()], d, h, f);
+        let logit = |p: &Params, hidden: usize, x: &[f32]| {
+            let mut hbuf = vec![0.0; hidden];
+            let mut out = vec![0.0; f];
+            forward(p, x, d, hidden, &mut hbuf, &mut out);
+            out.iter()
+                .map(|&o| (o / (1.0 - o)).ln())
+                .collect::<Vec<f32>>()
+        };
+        for x in [[0.3, -0.5, 0.4], [0.5, 0.25, -0.25], [-0.6, 0.0, 0.7]] {
+            let (la, lb, lm) = (
+                logit(&a, h, &x),
+                logit(&b, h, &x),
+                logit(&merged, 2 * h, &x),
+            );
+            for k in 0..f {
+                let mean = 0.5 * (la[k] + lb[k]);
+                assert!((lm[k] - mean).abs() < 1e-4, "{x:?}: {} vs {mean}", lm[k]);
+            }
+        }
+        // Trained: three members learn the XOR-like family, the hidden layer holds all of
+        // theirs, member 0 is the network a single-member training fits, and the number of
+        // threads changes nothing.
+        let mut rng = SceneRng::new(7);
+        let n = 1500;
+        let mut rows = Vec::new();
+        let mut labels = Vec::new();
+        for _ in 0..n {
+            let (a, b) = (rng.unit() as f32, rng.unit() as f32);
+            rows.extend([a, b]);
+            labels.extend([a > 0.5, (a > 0.5) == (b > 0.5)]);
+        }
+        let opts = |members: usize, threads: usize| PresenceTraining {
+            hidden: 8,
+            epochs: 40,
+            batch: 32,
+            learning_rate: 1e-2,
+            l2: 0.0,
+            seed: 3,
+            threshold_beta: 1.0,
+            members,
+            threads,
+        };
+        let one = train_presence(&rows, 2, &labels, 2, &opts(1, 1));
+        let three = train_presence(&rows, 2, &labels, 2, &opts(3, 1));
+        assert_eq!(three, train_presence(&rows, 2, &labels, 2, &opts(3, 2)));
+        assert_eq!(three.hidden, 24);
+        assert_eq!(&three.w1[..8 * 2], &one.w1[..]);
+        assert_ne!(&three.w1[8 * 2..16 * 2], &one.w1[..], "members start apart");
+        let mut scratch = vec![0.0; 32];
+        let mut out = [0.0_f32; 2];
+        let correct = (0..n)
+            .filter(|&i| {
+                three.predict_into(&rows[i * 2..(i + 1) * 2], &mut scratch, &mut out);
+                (out[1] >= three.thresholds[1]) == labels[i * 2 + 1]
+            })
+            .count();
+        assert!(
+            correct as f64 / n as f64 > 0.9,
+            "seed 7/3: {correct} of {n}"
+        );
     }
 }
