@@ -9,9 +9,7 @@
 use super::{AnalysisSpec, Family, LearnSettings, Palette, PaletteError, Provenance};
 use super::{learn_family_atoms, stacked_columns};
 use crate::scene::{ClipBank, Composer, Mix, MixSpec, SceneError, SceneRng, SoundFontRenderer};
-use crate::shares::check::{
-    CheckReport, MixRecord, evaluate_mix, known_presence_residuals, presence_rows,
-};
+use crate::shares::check::{CheckReport, MixRecord, column_residuals, evaluate_mix, presence_rows};
 use crate::shares::presence::feature_count;
 use crate::shares::{PresenceTraining, SharesError, SharesMode, train_presence};
 use thiserror::Error;
@@ -137,7 +135,8 @@ impl Default for CheckPlan {
 
 /// Training mixes the unexplained tolerance is calibrated on.
 const CALIBRATION_MIXES: usize = 40;
-/// The energy-weighted quantile of known material's residual taken as the tolerance.
+/// The energy-weighted quantile of the residual both stages leave on the palette's own material,
+/// taken as the tolerance.
 const TOLERANCE_QUANTILE: f64 = 0.9;
 
 /// Energy-weighted quantile `q` of (weight, value) pairs (0 for none).
@@ -390,15 +389,16 @@ pub fn build_palette(
     let model = train_presence(&x, features, &y, nf, &training);
     let palette = palette.with_presence(Some(model))?;
     // Calibrate the unexplained tolerance: the energy-weighted quantile TOLERANCE_QUANTILE of
-    // the residual the amount stage leaves on training mixes of known families.
+    // the residual both stages leave on mixes of the palette's own families — the last
+    // training mixes, whose rows only set the presence thresholds.
     let calib = palette.clone().with_unexplained_tolerance(0.0)?;
     let n = plan.training_mixes.min(CALIBRATION_MIXES);
     let residuals = parallel(
         n,
         plan.threads,
         |i| -> Result<Vec<(f64, f64)>, BuildError> {
-            let mix = training_mix(i)?;
-            Ok(known_presence_residuals(&calib, &mix)?)
+            let mix = training_mix(plan.training_mixes - 1 - i)?;
+            Ok(column_residuals(&calib, &mix, SharesMode::TwoStage)?)
         },
     );
     let mut all = Vec::new();

@@ -171,16 +171,18 @@ fn feed_known_presence(
     }
 }
 
-/// The unexplained share of every column of `mix` when the amount stage is given the families
-/// truly present, as (column energy, unexplained share) pairs. With a palette whose tolerance is
-/// 0 that share is the raw residual fraction: palettes calibrate their tolerance from it.
-pub fn known_presence_residuals(
+/// The unexplained share of every column of `mix` as (column energy, unexplained share) pairs,
+/// with the shares estimated in `mode` (with [`SharesMode::KnownPresence`] the amount stage is
+/// given the families truly present). With a palette whose tolerance is 0 that share is the raw
+/// residual fraction: palettes calibrate their tolerance from it.
+pub fn column_residuals(
     palette: &Palette,
     mix: &Mix,
+    mode: SharesMode,
 ) -> Result<Vec<(f64, f64)>, SharesError> {
     let settings = SharesSettings {
         response_ms: 0.0,
-        mode: SharesMode::KnownPresence,
+        mode,
     };
     let mut tracker = SharesTracker::new(palette, settings, f64::from(mix.sample_rate_hz))?;
     let mut out = Vec::new();
@@ -189,7 +191,11 @@ pub fn known_presence_residuals(
             out.push((f64::from(u.energy), f64::from(u.raw.unexplained)));
         }
     };
-    feed_known_presence(&mut tracker, mix, 1.0, palette.families().len(), &mut on);
+    if mode == SharesMode::KnownPresence {
+        feed_known_presence(&mut tracker, mix, 1.0, palette.families().len(), &mut on);
+    } else {
+        tracker.process(&mix.signal, &mut on);
+    }
     Ok(out)
 }
 
