@@ -3,51 +3,35 @@
 mod common;
 use common::{text, weft};
 
-#[test]
-fn presence_ensembles_wider_than_a_palette_holds_are_refused_first() {
-    // The folder does not exist: the option error must come before it is looked at.
-    let o = weft(&[
+/// Runs `weft palette learn` on a folder that does not exist with `extra` options; returns
+/// whether it succeeded and its error output.
+fn learn_nowhere(extra: &[&str]) -> (bool, String) {
+    let mut args = vec![
         "palette",
         "learn",
         "/nonexistent/folders",
         "--out",
         "/nonexistent/x.weftpal",
-        "--hidden",
-        "128",
-        "--members",
-        "3",
-    ]);
-    let err = text(&o.stderr);
-    assert!(!o.status.success());
+    ];
+    args.extend_from_slice(extra);
+    let o = weft(&args);
+    (o.status.success(), text(&o.stderr))
+}
+
+#[test]
+fn presence_ensembles_wider_than_a_palette_holds_are_refused_first() {
+    // The folder does not exist: the option error must come before it is looked at.
+    let (ok, err) = learn_nowhere(&["--hidden", "128", "--members", "3"]);
+    assert!(!ok);
     assert!(
         err.contains("384 hidden units") && err.contains("at most 256"),
         "{err}"
     );
-    let o = weft(&[
-        "palette",
-        "learn",
-        "/nonexistent/folders",
-        "--out",
-        "/nonexistent/x.weftpal",
-        "--members",
-        "0",
-    ]);
-    let err = text(&o.stderr);
-    assert!(!o.status.success());
+    let (ok, err) = learn_nowhere(&["--members", "0"]);
+    assert!(!ok);
     assert!(err.contains("from 1 to 16"), "{err}");
     // Within the limit the options pass and the missing folder is what is reported.
-    let o = weft(&[
-        "palette",
-        "learn",
-        "/nonexistent/folders",
-        "--out",
-        "/nonexistent/x.weftpal",
-        "--hidden",
-        "64",
-        "--members",
-        "4",
-    ]);
-    let err = text(&o.stderr);
-    assert!(!o.status.success());
+    let (ok, err) = learn_nowhere(&["--hidden", "64", "--members", "4"]);
+    assert!(!ok);
     assert!(err.contains("/nonexistent/folders"), "{err}");
 }

@@ -857,12 +857,11 @@ mod tests {
         );
     }
 
-    #[test]
-    fn separable_labels_are_learned_by_both_model_shapes() {
-        // Two families; family 0 present when feature 0 > 0.5, family 1 when the two features
-        // are on the same side of 0.5 (XOR-like: only the hidden layer can learn it well).
-        let mut rng = SceneRng::new(5);
-        let (n, d) = (2000, 2);
+    /// `n` rows of two uniform features (seed `seed`) and two families: family 0 present when
+    /// feature 0 > 0.5, family 1 when the two features are on the same side of 0.5 (XOR-like:
+    /// only a hidden layer can learn it well).
+    fn xor_rows(seed: u64, n: usize) -> (Vec<f32>, Vec<bool>) {
+        let mut rng = SceneRng::new(seed);
         let mut rows = Vec::new();
         let mut labels = Vec::new();
         for _ in 0..n {
@@ -870,6 +869,14 @@ mod tests {
             rows.extend([a, b]);
             labels.extend([a > 0.5, (a > 0.5) == (b > 0.5)]);
         }
+        (rows, labels)
+    }
+
+    #[test]
+    fn separable_labels_are_learned_by_both_model_shapes() {
+        // The XOR-like family needs the hidden layer.
+        let (n, d) = (2000, 2);
+        let (rows, labels) = xor_rows(5, n);
         for hidden in [0, 16] {
             let opts = PresenceTraining {
                 hidden,
@@ -940,15 +947,8 @@ mod tests {
         // Trained: three members learn the XOR-like family, the hidden layer holds all of
         // theirs, member 0 is the network a single-member training fits, and the number of
         // threads changes nothing.
-        let mut rng = SceneRng::new(7);
         let n = 1500;
-        let mut rows = Vec::new();
-        let mut labels = Vec::new();
-        for _ in 0..n {
-            let (a, b) = (rng.unit() as f32, rng.unit() as f32);
-            rows.extend([a, b]);
-            labels.extend([a > 0.5, (a > 0.5) == (b > 0.5)]);
-        }
+        let (rows, labels) = xor_rows(7, n);
         let opts = |members: usize, threads: usize| PresenceTraining {
             hidden: 8,
             epochs: 40,
