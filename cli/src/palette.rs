@@ -247,12 +247,12 @@ fn threads(t: Option<usize>) -> usize {
 }
 
 fn plan_from(o: &BuildOptions) -> Result<BuildPlan> {
-    if o.hidden * o.members > MAX_HIDDEN {
+    let width = o.hidden.saturating_mul(o.members);
+    if width > MAX_HIDDEN {
         bail!(
-            "--hidden {} with --members {} makes {} hidden units; a palette holds at most {MAX_HIDDEN}",
+            "--hidden {} with --members {} makes {width} hidden units; a palette holds at most {MAX_HIDDEN}",
             o.hidden,
             o.members,
-            o.hidden * o.members
         );
     }
     let analysis = AnalysisSpec {

@@ -27,6 +27,9 @@ fn presence_ensembles_wider_than_a_palette_holds_are_refused_first() {
         err.contains("384 hidden units") && err.contains("at most 256"),
         "{err}"
     );
+    let (ok, err) = learn_nowhere(&["--hidden", &usize::MAX.to_string(), "--members", "2"]);
+    assert!(!ok);
+    assert!(err.contains("at most 256"), "{err}");
     let (ok, err) = learn_nowhere(&["--members", "0"]);
     assert!(!ok);
     assert!(err.contains("from 1 to 16"), "{err}");
