@@ -9,6 +9,7 @@
 //!
 //! Needs the bundle: run `cargo xtask bundle weft` first (the tests fail, never skip, without it).
 
+use std::collections::BTreeMap;
 use std::f64::consts::TAU;
 use std::sync::{Mutex, MutexGuard, PoisonError};
 use std::time::Instant;
@@ -38,18 +39,31 @@ fn one_at_a_time() -> MutexGuard<'static, ()> {
 }
 
 /// Threads of this process (Linux: entries of `/proc/self/task`) other than the test harness's
-/// (named after the tests, truncated to 15 bytes by the kernel), which come and go on their own.
-fn thread_count() -> usize {
+/// (named after the tests, truncated to 15 bytes by the kernel), which come and go on their own:
+/// thread id → name.
+fn threads() -> BTreeMap<String, String> {
     let tasks = std::fs::read_dir("/proc/self/task")
         .unwrap_or_else(|err| panic!("cannot list /proc/self/task: {err}"));
     tasks
         .flatten()
-        .filter(|task| {
+        .filter_map(|task| {
             let comm = std::fs::read_to_string(task.path().join("comm")).unwrap_or_default();
-            let comm = comm.trim_end();
-            comm.is_empty() || !TEST_NAMES.iter().any(|t| t.starts_with(comm))
+            let comm = comm.trim_end().to_owned();
+            let harness = !comm.is_empty() && TEST_NAMES.iter().any(|t| t.starts_with(&comm));
+            (!harness).then(|| (task.file_name().to_string_lossy().into_owned(), comm))
         })
-        .count()
+        .collect()
+}
+
+/// Threads in `after` that were not in `before` (a thread left behind), as "id name" lines. A
+/// thread that existed before and has ended since is not a leak: another test's or the
+/// runtime's.
+fn left_behind(before: &BTreeMap<String, String>, after: &BTreeMap<String, String>) -> Vec<String> {
+    after
+        .iter()
+        .filter(|(id, _)| !before.contains_key(*id))
+        .map(|(id, name)| format!("{id} {name}"))
+        .collect()
 }
 
 /// The analysis thread's name (`plugin/src/analysis.rs`).
@@ -248,7 +262,7 @@ fn a_thousand_activations_account_for_every_sample_and_leave_no_thread() {
     let _serial = one_at_a_time();
     let start = Instant::now();
     let mut plugin = warm_up();
-    let threads_before = thread_count();
+    let threads_before = threads();
     let mut samples = 0_u64;
     for cycle in 0..CYCLES {
         // Alternate rate, block, layout and render mode, with a few samples per activation.
@@ -279,14 +293,16 @@ fn a_thousand_activations_account_for_every_sample_and_leave_no_thread() {
         );
         samples += processed as u64;
     }
-    let threads_after = thread_count();
-    assert_eq!(
-        threads_after, threads_before,
-        "threads before the {CYCLES} activations: {threads_before}, after: {threads_after}"
+    let threads_after = threads();
+    let left = left_behind(&threads_before, &threads_after);
+    assert!(
+        left.is_empty(),
+        "threads left behind by the {CYCLES} activations: {left:?}"
     );
+    let threads_before = threads_before.len();
     println!(
-        "{CYCLES} activations ({samples} frames): every sample accounted for, {threads_before} \
-         threads before and after; {:.1} s",
+        "{CYCLES} activations ({samples} frames): every sample accounted for, no thread \
+         left behind ({threads_before} before); {:.1} s",
         start.elapsed().as_secs_f64()
     );
 }
@@ -297,7 +313,7 @@ fn sixteen_instances_interleaved_each_read_their_own_signal() {
     const INSTANCES: usize = 16;
     let start = Instant::now();
     warm_up();
-    let threads_before = thread_count();
+    let threads_before = threads();
     let mut running: Vec<(Running, f64, f64)> = (0..INSTANCES)
         .map(|i| {
             // Distinct block sizes give distinct snapshot names (see `SnapshotClaim`).
@@ -329,7 +345,7 @@ fn sixteen_instances_interleaved_each_read_their_own_signal() {
         analysis_threads, INSTANCES,
         "{INSTANCES} active instances should each run one analysis thread"
     );
-    let threads_active = thread_count();
+    let threads_active = threads().len();
     // One second of audio each, one block per instance in turn.
     let mut round = 0;
     loop {
@@ -358,11 +374,13 @@ fn sixteen_instances_interleaved_each_read_their_own_signal() {
         let (_plugin, s, processed) = r.stop(&what);
         assert_offline_sine(&s, settings, processed, amplitude, &what);
     }
-    let threads_after = thread_count();
-    assert_eq!(
-        threads_after, threads_before,
-        "threads before the instances: {threads_before}, after: {threads_after}"
+    let threads_after = threads();
+    let left = left_behind(&threads_before, &threads_after);
+    assert!(
+        left.is_empty(),
+        "threads left behind by the instances: {left:?}"
     );
+    let (threads_before, threads_after) = (threads_before.len(), threads_after.len());
     println!(
         "{INSTANCES} instances, {round} interleaved rounds: each analysed its own sine at its own \
          level, none dropped; threads {threads_before} → {threads_active} → {threads_after}; \
