@@ -214,14 +214,8 @@ fn parse_pair(s: &str) -> Result<(String, String), String> {
 /// Runs a palette command.
 pub fn run(args: PaletteArgs) -> Result<()> {
     match args.command {
-        PaletteCommand::Learn(a) => {
-            plan_from(&a.build)?;
-            learn(&a)
-        }
-        PaletteCommand::Render(a) => {
-            plan_from(&a.build)?;
-            render(&a)
-        }
+        PaletteCommand::Learn(a) => learn(&a),
+        PaletteCommand::Render(a) => render(&a),
         PaletteCommand::Check(a) => {
             let report = check(&a)?;
             if a.json {
@@ -450,6 +444,8 @@ fn clip_voicing(name: &str) -> FamilyVoicing {
 }
 
 fn learn(a: &LearnArgs) -> Result<()> {
+    // Options first: a refused option costs no work.
+    let plan = plan_from(&a.build)?;
     let (names, bank) = read_folders(&a.folder)?;
     let mut sections: Vec<String> = Vec::new();
     let mut families = Vec::new();
@@ -480,7 +476,6 @@ fn learn(a: &LearnArgs) -> Result<()> {
     }
     let voicings: Vec<FamilyVoicing> = names.iter().map(|n| clip_voicing(n)).collect();
     let composer = Composer::new(voicings, bank.counts(), 1.0);
-    let plan = plan_from(&a.build)?;
     let provenance = Provenance {
         weft_version: env!("CARGO_PKG_VERSION").to_owned(),
         source: format!("folders: {}", names.join(", ")),
@@ -540,11 +535,11 @@ fn soundfont_scene(
 }
 
 fn render(a: &RenderArgs) -> Result<()> {
+    let plan = plan_from(&a.build)?;
     let renderer = load_soundfont(&a.soundfont)?;
     let (voicings, bank, voice_source) = soundfont_scene(a.voice, 0)?;
     let composer = Composer::new(voicings, bank.counts(), 0.6);
     let (families, sections) = default_families();
-    let plan = plan_from(&a.build)?;
     let provenance = Provenance {
         weft_version: env!("CARGO_PKG_VERSION").to_owned(),
         source: format!(
