@@ -11,8 +11,8 @@ const SOUNDFONT: &str = "/usr/share/sounds/sf2/FluidR3_GM.sf2";
 const SEED: u64 = 11;
 
 /// Bounds asserted on this small check: what the built-in palette reached on this seed when it
-/// was made (30.1 %, 26.1 %, F1 0.71; the palettes before, 33.3 %, 29.0 %, 0.68 and 41.1 %,
-/// 36.4 %, 0.49) with a margin of about 7 points. The goals (25 %, 15 %, 0.85) are not
+/// was made (29.3 %, 25.1 %, F1 0.69; the palettes before, 30.1 %, 26.1 %, 0.71, then 33.3 %,
+/// 29.0 %, 0.68 and 41.1 %, 36.4 %, 0.49) with a margin of about 7 points. The goals (25 %, 15 %, 0.85) are not
 /// met; the gap is stated in the palette note. Regenerating the palette must not make these
 /// figures worse.
 const MAX_TV_PCT: f64 = 37.0;

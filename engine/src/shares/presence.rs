@@ -192,7 +192,9 @@ fn sigmoid(a: f32) -> f32 {
 /// 60`, seeds 1, 2, 3, energy misattributed per family): F1 thresholds (β = 1) 40.7, 45.0,
 /// 43.1 %; β = 0.5 37.8, 44.1, 41.9 %. False alarms cost more than misses: on seed 1, the
 /// model's decisions without their false alarms misattributed 18.3 % of the energy, without
-/// their misses 31.9 %.
+/// their misses 31.9 %. The built-in palette's later ensemble of four networks measured best
+/// at β = 0.7 (see `cargo xtask palette`); the default stays with the lighter models it was
+/// measured on.
 pub const DEFAULT_THRESHOLD_BETA: f32 = 0.5;
 
 /// How a presence model is trained.
