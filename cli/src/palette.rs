@@ -15,8 +15,8 @@ use weft_engine::scene::{
     ClipBank, Composer, FamilyVoicing, Role, SoundFontRenderer, VoiceSource, general_midi_voicings,
 };
 use weft_engine::shares::check::CheckReport;
-use weft_engine::shares::presence::MAX_HIDDEN;
-use weft_engine::shares::{PresenceTraining, SharesMode};
+use weft_engine::shares::presence::{MAX_HIDDEN, MAX_SHARE_EXPONENT};
+use weft_engine::shares::{PresenceTraining, ShareTraining, SharesMode};
 
 /// The SoundFont Debian's `fluid-soundfont-gm` installs.
 pub const DEFAULT_SOUNDFONT: &str = "/usr/share/sounds/sf2/FluidR3_GM.sf2";
@@ -111,6 +111,15 @@ pub struct BuildOptions {
     /// precision (a family judged present by mistake takes energy from the others).
     #[arg(long, default_value_t = PresenceTraining::default().threshold_beta, value_parser = parse_beta)]
     pub presence_beta: f32,
+    /// Hidden units of the direct share network, trained beside the presence model on the
+    /// same mixes to estimate each family's share; its estimate then weighs the amount
+    /// stage's shares (0: no such network).
+    #[arg(long, default_value_t = ShareTraining::default().hidden, value_parser = parse_share_hidden)]
+    pub share_hidden: usize,
+    /// Exponent of the direct share network's estimate when it weighs the amount stage's
+    /// shares (0: no effect; 1: a plain product).
+    #[arg(long, default_value_t = ShareTraining::default().exponent, value_parser = parse_share_exponent)]
+    pub share_exponent: f32,
     /// Worker threads (default: all cores).
     #[arg(long)]
     pub threads: Option<usize>,
@@ -197,6 +206,24 @@ fn parse_beta(s: &str) -> Result<f32, String> {
     }
 }
 
+fn parse_share_hidden(s: &str) -> Result<usize, String> {
+    match s.parse::<usize>() {
+        Ok(h) if h <= MAX_HIDDEN => Ok(h),
+        _ => Err(format!(
+            "'{s}' is not a whole number from 0 to {MAX_HIDDEN}"
+        )),
+    }
+}
+
+fn parse_share_exponent(s: &str) -> Result<f32, String> {
+    match s.parse::<f32>() {
+        Ok(e) if e.is_finite() && (0.0..=MAX_SHARE_EXPONENT).contains(&e) => Ok(e),
+        _ => Err(format!(
+            "'{s}' is not a number from 0 to {MAX_SHARE_EXPONENT}"
+        )),
+    }
+}
+
 fn parse_members(s: &str) -> Result<usize, String> {
     match s.parse::<usize>() {
         Ok(m) if (1..=16).contains(&m) => Ok(m),
@@ -273,6 +300,11 @@ fn plan_from(o: &BuildOptions) -> Result<BuildPlan> {
             members: o.members,
             l2: o.l2,
             threshold_beta: o.presence_beta,
+            shares: ShareTraining {
+                hidden: o.share_hidden,
+                exponent: o.share_exponent,
+                ..ShareTraining::default()
+            },
             ..PresenceTraining::default()
         },
         seed: o.seed,
@@ -560,6 +592,14 @@ fn render(a: &RenderArgs) -> Result<()> {
                 plan.gain_range_db,
                 plan.presence.hidden
             ),
+            if plan.presence.shares.hidden == 0 {
+                "no direct share network".to_owned()
+            } else {
+                format!(
+                    "direct share network: {} hidden units, exponent {}",
+                    plan.presence.shares.hidden, plan.presence.shares.exponent
+                )
+            },
         ],
     };
     let palette = build_palette(

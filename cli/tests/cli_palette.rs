@@ -38,3 +38,18 @@ fn presence_ensembles_wider_than_a_palette_holds_are_refused_first() {
     assert!(!ok);
     assert!(err.contains("/nonexistent/folders"), "{err}");
 }
+
+#[test]
+fn direct_share_network_options_are_refused_first_when_out_of_range() {
+    let (ok, err) = learn_nowhere(&["--share-hidden", "257"]);
+    assert!(!ok);
+    assert!(err.contains("from 0 to 256"), "{err}");
+    for bad in ["-0.5", "4.5", "NaN"] {
+        let (ok, err) = learn_nowhere(&[&format!("--share-exponent={bad}")]);
+        assert!(!ok);
+        assert!(err.contains("from 0 to 4"), "{bad}: {err}");
+    }
+    let (ok, err) = learn_nowhere(&["--share-hidden", "32", "--share-exponent", "1"]);
+    assert!(!ok);
+    assert!(err.contains("/nonexistent/folders"), "{err}");
+}

@@ -11,7 +11,8 @@ const SOUNDFONT: &str = "/usr/share/sounds/sf2/FluidR3_GM.sf2";
 const SEED: u64 = 11;
 
 /// Bounds asserted on this small check: what the built-in palette reached on this seed when it
-/// was made (29.3 %, 25.1 %, F1 0.69; the palettes before, 30.1 %, 26.1 %, 0.71, then 33.3 %,
+/// was made (28.8 %, 24.4 %, F1 0.68; the palettes before, 29.3 %, 25.1 %, 0.69, then 30.1 %,
+/// 26.1 %, 0.71, then 33.3 %,
 /// 29.0 %, 0.68 and 41.1 %, 36.4 %, 0.49) with a margin of about 7 points. The goals (25 %, 15 %, 0.85) are not
 /// met; the gap is stated in the palette note. Regenerating the palette must not make these
 /// figures worse.
@@ -88,7 +89,8 @@ fn small_fixed_seed_check_meets_the_measured_bounds() {
         let taken: f64 = a.taken_by.iter().map(|(_, p)| p).sum();
         assert!(a.windows > 0 && a.truth_pct >= 90.0, "{a:?}");
         assert!((0.0..=100.0).contains(&a.kept_pct), "{a:?}");
-        assert!(a.kept_pct + taken <= 100.0 + 1e-6, "{a:?}");
+        // Shares are f32: their sum may pass 1 by a few units in the last place.
+        assert!(a.kept_pct + taken <= 100.0 + 1e-4, "{a:?}");
         assert!(j["alone"][a.name.as_str()]["kept_pct"].is_number(), "{j}");
     }
 }

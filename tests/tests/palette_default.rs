@@ -48,6 +48,10 @@ fn run(palette: &Palette, x: &[f32], block: usize) -> Vec<SharesUpdate> {
 #[test]
 fn invariants_hold_on_rendered_mixes() {
     let palette = Palette::default_palette();
+    assert!(
+        palette.presence().and_then(|m| m.shares.as_ref()).is_some(),
+        "the built-in palette carries a direct share network (cargo xtask palette)"
+    );
     let nf = palette.families().len();
     for seed in [3_u64, 4] {
         let m = mix(seed);

@@ -11,7 +11,9 @@ use super::{learn_family_atoms, stacked_columns};
 use crate::scene::{ClipBank, Composer, Mix, MixSpec, SceneError, SceneRng, SoundFontRenderer};
 use crate::shares::check::{CheckReport, MixRecord, column_residuals, evaluate_mix, presence_rows};
 use crate::shares::presence::feature_count;
-use crate::shares::{PresenceTraining, SharesError, SharesMode, train_presence};
+use crate::shares::{
+    PresenceTraining, SharesError, SharesMode, train_presence, train_share_network,
+};
 use thiserror::Error;
 
 /// Why a palette could not be built or checked.
@@ -190,6 +192,10 @@ fn parallel<T: Send>(n: usize, threads: usize, job: impl Fn(usize) -> T + Sync) 
         .collect()
 }
 
+/// One training mix's presence rows: features, labels and exact shares (see
+/// [`presence_rows`]).
+type MixRows = (Vec<f32>, Vec<bool>, Vec<f32>);
+
 /// Renders one random mix of `candidates` families.
 #[allow(clippy::too_many_arguments)]
 pub fn render_mix(
@@ -360,20 +366,23 @@ pub fn build_palette(
     let rows = parallel(
         plan.training_mixes,
         plan.threads,
-        |i| -> Result<(Vec<f32>, Vec<bool>), BuildError> {
+        |i| -> Result<MixRows, BuildError> {
             let mix = training_mix(i)?;
             let mut rows = Vec::new();
             let mut labels = Vec::new();
-            presence_rows(&palette, &mix, &mut rows, &mut labels)?;
-            Ok((rows, labels))
+            let mut shares = Vec::new();
+            presence_rows(&palette, &mix, &mut rows, &mut labels, &mut shares)?;
+            Ok((rows, labels, shares))
         },
     );
     let mut x = Vec::new();
     let mut y = Vec::new();
+    let mut truth = Vec::new();
     for r in rows {
-        let (a, b) = r?;
+        let (a, b, c) = r?;
         x.extend(a);
         y.extend(b);
+        truth.extend(c);
     }
     let features = feature_count(nf, palette.atom_counts().iter().sum());
     progress(&format!(
@@ -386,7 +395,19 @@ pub fn build_palette(
     let mut training = plan.presence;
     training.seed = SceneRng::derive(plan.seed, 77).next_u64();
     training.threads = plan.threads;
-    let model = train_presence(&x, features, &y, nf, &training);
+    let mut model = train_presence(&x, features, &y, nf, &training);
+    if training.shares.hidden > 0 {
+        progress(&format!(
+            "training the direct share network ({} hidden units)",
+            training.shares.hidden
+        ));
+        if let Some((net, tv_pct)) = train_share_network(&x, &truth, &model, &training) {
+            progress(&format!(
+                "direct share network: {tv_pct:.1} % of the energy misattributed on held-back training mixes"
+            ));
+            model.shares = Some(net);
+        }
+    }
     let palette = palette.with_presence(Some(model))?;
     // Calibrate the unexplained tolerance: the energy-weighted quantile TOLERANCE_QUANTILE of
     // the residual both stages leave on mixes of the palette's own families — the last

@@ -200,14 +200,16 @@ pub fn column_residuals(
 }
 
 /// Presence-training rows of one mix: the presence features after every column (the palette's
-/// presence model is not used) and, per family, whether it holds ≥ [`PRESENT_SHARE`] of the
-/// stems' energy over the span the features summarise. Rows are appended to `rows`
-/// (row-major) and `labels` (row-major, one per family); returns the number of rows added.
+/// presence model is not used) and, per family, its share of the stems' energy over the span
+/// the features summarise and whether that share is ≥ [`PRESENT_SHARE`]. Rows are appended to
+/// `rows` (row-major), `labels` and `shares` (row-major, one per family); returns the number
+/// of rows added.
 pub fn presence_rows(
     palette: &Palette,
     mix: &Mix,
     rows: &mut Vec<f32>,
     labels: &mut Vec<bool>,
+    shares: &mut Vec<f32>,
 ) -> Result<usize, SharesError> {
     let nf = palette.families().len();
     let settings = SharesSettings {
@@ -234,6 +236,7 @@ pub fn presence_rows(
         };
         rows.extend_from_slice(e.presence_features());
         labels.extend(truth.iter().map(|&s| s >= PRESENT_SHARE));
+        shares.extend(truth.iter().map(|&s| s as f32));
         added += 1;
     };
     tracker.process_each(&mix.signal, &mut on);

@@ -10,6 +10,9 @@
 //! 3. *presence*: the palette's presence model reads ~0.75 s of those statistics and decides
 //!    which families sound;
 //! 4. *amount*: activations again, with only the present families' atoms (started from step 2's);
+//!    when the palette carries a direct share network (see [`super::presence::ShareNetwork`]),
+//!    each present family's energy `e_f` is then weighed by that network's share estimate
+//!    `r_f` as `e_f · r_f^γ`, rescaled to the same sum (a geometric blend of two estimates);
 //! 5. *unexplained* `u` = the part of the column's energy the reconstruction misses beyond the
 //!    palette's tolerance, `max(r − τ, 0) / (1 − τ)` with `r = Σ_d max(v_d − (Wh)_d, 0) / Σ_d v_d`;
 //!    each family's share is `(1 − u) · e_f / Σ_g e_g`, so the shares and *unexplained* sum to 1;
@@ -223,7 +226,7 @@ impl SharesEstimator {
             .round()
             .max(1.0) as usize;
         let model = palette.presence().cloned();
-        let scratch_len = model.as_ref().map_or(0, |m| m.features + m.hidden);
+        let scratch_len = model.as_ref().map_or(0, PresenceModel::scratch_len);
         // One-sided Hann-windowed power of a sine of RMS σ sums to 0.1875·n²·σ² (Parseval with
         // the Hann window's mean square 3/8, half of it on the positive side).
         let n = framing.frame_len as f64;
@@ -421,6 +424,29 @@ impl SharesEstimator {
         (r / total).clamp(0.0, 1.0)
     }
 
+    /// Weighs the amount stage's family energies by the direct share network's estimate raised
+    /// to its exponent (a weighted geometric blend of the two), keeping their sum, which
+    /// it returns. Where the network gives every present family nothing, the energies stay.
+    fn blend_direct(&mut self, direct: &[f32; MAX_FAMILIES], explained: f32) -> f32 {
+        let exponent = self
+            .model
+            .as_ref()
+            .and_then(|m| m.shares.as_ref())
+            .map_or(0.0, |n| n.exponent);
+        let mut sum = 0.0_f32;
+        for (e, &r) in self.fam_energy.iter_mut().zip(direct) {
+            *e *= r.max(0.0).powf(exponent);
+            sum += *e;
+        }
+        if sum > 0.0 && sum.is_finite() {
+            let k = explained / sum;
+            self.fam_energy.iter_mut().for_each(|e| *e *= k);
+            explained
+        } else {
+            self.family_energies(true)
+        }
+    }
+
     fn shares_from(&self, explained_sum: f32, residual: f32) -> Shares {
         let tol = self.tolerance;
         let u = ((residual - tol).max(0.0) / (1.0 - tol)).clamp(0.0, 1.0);
@@ -496,11 +522,14 @@ impl SharesEstimator {
         // Stage 1: presence.
         let mut presence = [0.0_f32; MAX_FAMILIES];
         let mut present = [false; MAX_FAMILIES];
+        let mut direct = [0.0_f32; MAX_FAMILIES];
+        let mut use_direct = false;
         let use_model = self.mode == SharesMode::TwoStage && self.model.is_some();
         match (self.mode, &self.model) {
             (SharesMode::TwoStage, Some(model)) => {
                 let x = self.context.features();
                 model.predict_into(x, &mut self.scratch, &mut presence[..self.families]);
+                use_direct = model.shares_into(x, &mut self.scratch, &mut direct);
                 let mut any = false;
                 for f in 0..self.families {
                     present[f] = presence[f] >= model.thresholds[f];
@@ -538,7 +567,10 @@ impl SharesEstimator {
                 Start::Warm,
             );
             let residual = self.residual_fraction(self.columns.stacked(), total);
-            let explained = self.family_energies(true);
+            let mut explained = self.family_energies(true);
+            if use_direct {
+                explained = self.blend_direct(&direct, explained);
+            }
             self.shares_from(explained, residual)
         } else {
             nmf_alone
@@ -584,7 +616,9 @@ mod tests {
     };
     use crate::scene::{Mix, SceneRng};
     use crate::shares::check::presence_rows;
-    use crate::shares::presence::{PresenceTraining, feature_count, train_presence};
+    use crate::shares::presence::{
+        PresenceTraining, ShareTraining, feature_count, train_presence, train_share_network,
+    };
     use crate::shares::tracker::SharesTracker;
     use std::f64::consts::TAU;
 
@@ -671,6 +705,7 @@ mod tests {
         }
         let mut rows = Vec::new();
         let mut labels = Vec::new();
+        let mut shares = Vec::new();
         let mut rng = SceneRng::new(99);
         for m in 0..12u64 {
             let stems: Vec<(usize, Vec<f32>)> = (0..3)
@@ -684,14 +719,22 @@ mod tests {
                 stems.iter().map(|(f, s)| (*f, s.as_slice())).collect();
             let gains: Vec<f64> = members.iter().map(|_| rng.uniform(-20.0, 0.0)).collect();
             let mix = Mix::new(&members, &gains, SR as u32);
-            presence_rows(&palette, &mix, &mut rows, &mut labels).expect("rows");
+            presence_rows(&palette, &mix, &mut rows, &mut labels, &mut shares).expect("rows");
         }
         let opts = PresenceTraining {
             hidden: 8,
             epochs: 20,
+            shares: ShareTraining {
+                hidden: 8,
+                epochs: 20,
+                batch: 32,
+                ..ShareTraining::default()
+            },
             ..PresenceTraining::default()
         };
-        let model = train_presence(&rows, feature_count(3, 12), &labels, 3, &opts);
+        let mut model = train_presence(&rows, feature_count(3, 12), &labels, 3, &opts);
+        model.shares = train_share_network(&rows, &shares, &model, &opts).map(|(net, _)| net);
+        assert!(model.shares.is_some());
         palette.with_presence(Some(model)).expect("valid")
     }
 
@@ -770,6 +813,42 @@ mod tests {
                         }
                     }
                 }
+            }
+        }
+    }
+
+    #[test]
+    fn the_direct_share_network_weighs_the_amount_stage() {
+        let p = synthetic_palette(true);
+        let x = test_mix();
+        let with_exponent = |e: Option<f32>| {
+            let mut model = p.presence().expect("model").clone();
+            match e {
+                Some(e) => model.shares.as_mut().expect("net").exponent = e,
+                None => model.shares = None,
+            }
+            p.clone().with_presence(Some(model)).expect("valid")
+        };
+        // Exponent 0 is no network at all; a larger one moves the shares, which still sum to 1.
+        let none = run(&with_exponent(None), &x, 1024);
+        assert_eq!(run(&with_exponent(Some(0.0)), &x, 1024), none);
+        let strong = run(&with_exponent(Some(2.0)), &x, 1024);
+        let moved = none
+            .iter()
+            .zip(&strong)
+            .map(|(a, b)| {
+                (0..3)
+                    .map(|f| (a.raw.share[f] - b.raw.share[f]).abs())
+                    .sum::<f32>()
+            })
+            .fold(0.0_f32, f32::max);
+        assert!(moved > 0.01, "{moved}");
+        for u in strong.iter().filter(|u| u.raw.signal) {
+            let sum = u.raw.share[..3].iter().sum::<f32>() + u.raw.unexplained;
+            assert!((sum - 1.0).abs() < 1e-4, "{sum}");
+            // The amount stage's present families bound the blend: none other gains a share.
+            for f in 0..3 {
+                assert!(u.present[f] || u.raw.share[f] == 0.0);
             }
         }
     }

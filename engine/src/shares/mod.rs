@@ -22,5 +22,8 @@ pub use estimator::{
     DEFAULT_RESPONSE_MS, MAX_RESPONSE_MS, NO_SIGNAL_DB, ONSET_RISE_FRACTION, SOLVE_TOLERANCE,
     Shares, SharesError, SharesEstimator, SharesMode, SharesSettings, SharesUpdate,
 };
-pub use presence::{PresenceModel, PresenceTraining, train_presence};
+pub use presence::{
+    PresenceModel, PresenceTraining, ShareNetwork, ShareTraining, train_presence,
+    train_share_network,
+};
 pub use tracker::SharesTracker;
