@@ -30,8 +30,8 @@ pub const SEED: &str = "1";
 /// 27.4 → 26.8 %). Twice the training mixes (48 000) brought seeds 1–3 from 32.2 to 30.7 %
 /// (per section 28.1 → 26.7 %), and a direct share network of 256 hidden units weighing the
 /// amount stage (exponent 0.5; 0.5 beat 1 and 2 in a numpy trial on the same features) to
-/// 29.0 % (per section 25.5 %). `weft palette learn` keeps the lighter defaults, which a
-/// user's own folders can afford.
+/// 29.0 % (per section 25.5 %); over seeds 1–6, 30.9 → 28.1 % (per section 26.8 → 24.8 %).
+/// `weft palette learn` keeps the lighter defaults, which a user's own folders can afford.
 const PRESENCE_TRAINING: [&str; 16] = [
     "--mixes",
     "48000",
