@@ -120,6 +120,10 @@ pub struct BuildOptions {
     /// shares (0: no effect; 1: a plain product).
     #[arg(long, default_value_t = ShareTraining::default().exponent, value_parser = parse_share_exponent)]
     pub share_exponent: f32,
+    /// Share from which the direct share network admits a family to the amount stage that
+    /// the presence stage left out (0: never).
+    #[arg(long, default_value_t = ShareTraining::default().admit, value_parser = parse_share_admit)]
+    pub share_admit: f32,
     /// Worker threads (default: all cores).
     #[arg(long)]
     pub threads: Option<usize>,
@@ -224,6 +228,13 @@ fn parse_share_exponent(s: &str) -> Result<f32, String> {
     }
 }
 
+fn parse_share_admit(s: &str) -> Result<f32, String> {
+    match s.parse::<f32>() {
+        Ok(a) if (0.0..=1.0).contains(&a) => Ok(a),
+        _ => Err(format!("'{s}' is not a number from 0 to 1")),
+    }
+}
+
 fn parse_members(s: &str) -> Result<usize, String> {
     match s.parse::<usize>() {
         Ok(m) if (1..=16).contains(&m) => Ok(m),
@@ -303,6 +314,7 @@ fn plan_from(o: &BuildOptions) -> Result<BuildPlan> {
             shares: ShareTraining {
                 hidden: o.share_hidden,
                 exponent: o.share_exponent,
+                admit: o.share_admit,
                 ..ShareTraining::default()
             },
             ..PresenceTraining::default()
@@ -596,8 +608,10 @@ fn render(a: &RenderArgs) -> Result<()> {
                 "no direct share network".to_owned()
             } else {
                 format!(
-                    "direct share network: {} hidden units, exponent {}",
-                    plan.presence.shares.hidden, plan.presence.shares.exponent
+                    "direct share network: {} hidden units, exponent {}, admit {}",
+                    plan.presence.shares.hidden,
+                    plan.presence.shares.exponent,
+                    plan.presence.shares.admit
                 )
             },
         ],

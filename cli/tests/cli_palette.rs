@@ -49,7 +49,19 @@ fn direct_share_network_options_are_refused_first_when_out_of_range() {
         assert!(!ok);
         assert!(err.contains("from 0 to 4"), "{bad}: {err}");
     }
-    let (ok, err) = learn_nowhere(&["--share-hidden", "32", "--share-exponent", "1"]);
+    for bad in ["-0.1", "1.5", "NaN", "lots"] {
+        let (ok, err) = learn_nowhere(&[&format!("--share-admit={bad}")]);
+        assert!(!ok);
+        assert!(err.contains("from 0 to 1"), "{bad}: {err}");
+    }
+    let (ok, err) = learn_nowhere(&[
+        "--share-hidden",
+        "32",
+        "--share-exponent",
+        "1",
+        "--share-admit",
+        "0.3",
+    ]);
     assert!(!ok);
     assert!(err.contains("/nonexistent/folders"), "{err}");
 }

@@ -8,7 +8,8 @@
 //!    past the next onset; updates stop early at `SOLVE_TOLERANCE`), which give each family's
 //!    energy `e_f = Σ_{k∈f} h_k` (atoms sum to 1);
 //! 3. *presence*: the palette's presence model reads ~0.75 s of those statistics and decides
-//!    which families sound;
+//!    which families sound; a direct share network, when the palette carries one, also admits
+//!    any family to which it gives at least its `admit` share;
 //! 4. *amount*: activations again, with only the present families' atoms (started from step 2's);
 //!    when the palette carries a direct share network (see [`super::presence::ShareNetwork`]),
 //!    each present family's energy `e_f` is then weighed by that network's share estimate
@@ -530,9 +531,11 @@ impl SharesEstimator {
                 let x = self.context.features();
                 model.predict_into(x, &mut self.scratch, &mut presence[..self.families]);
                 use_direct = model.shares_into(x, &mut self.scratch, &mut direct);
+                let net = model.shares.as_ref().filter(|_| use_direct);
                 let mut any = false;
                 for f in 0..self.families {
-                    present[f] = presence[f] >= model.thresholds[f];
+                    present[f] = presence[f] >= model.thresholds[f]
+                        || net.is_some_and(|n| n.admits(direct[f]));
                     any |= present[f];
                 }
                 if !any {
@@ -821,10 +824,15 @@ mod tests {
     fn the_direct_share_network_weighs_the_amount_stage() {
         let p = synthetic_palette(true);
         let x = test_mix();
+        // Only the blend: the network admits no family here (see the next test).
         let with_exponent = |e: Option<f32>| {
             let mut model = p.presence().expect("model").clone();
             match e {
-                Some(e) => model.shares.as_mut().expect("net").exponent = e,
+                Some(e) => {
+                    let net = model.shares.as_mut().expect("net");
+                    net.exponent = e;
+                    net.admit = None;
+                }
                 None => model.shares = None,
             }
             p.clone().with_presence(Some(model)).expect("valid")
@@ -851,6 +859,42 @@ mod tests {
                 assert!(u.present[f] || u.raw.share[f] == 0.0);
             }
         }
+    }
+
+    #[test]
+    fn the_direct_share_network_admits_families_the_presence_stage_left_out() {
+        let p = synthetic_palette(true);
+        let x = test_mix();
+        // Thresholds no probability reaches: the presence stage keeps only its likeliest family.
+        let with_admit = |admit: Option<f32>| {
+            let mut model = p.presence().expect("model").clone();
+            model.thresholds.fill(1.0);
+            let net = model.shares.as_mut().expect("net");
+            net.exponent = 0.0;
+            net.admit = admit;
+            p.clone().with_presence(Some(model)).expect("valid")
+        };
+        let present = |u: &SharesUpdate| u.present[..3].iter().filter(|&&b| b).count();
+        let never = run(&with_admit(None), &x, 1024);
+        let signal: Vec<&SharesUpdate> = never.iter().filter(|u| u.raw.signal).collect();
+        assert!(signal.len() > 10);
+        assert!(signal.iter().all(|u| present(u) == 1));
+        // The test mix holds all three families: an admitting network lets more of them in.
+        let admitting = run(&with_admit(Some(0.05)), &x, 1024);
+        let more = admitting
+            .iter()
+            .filter(|u| u.raw.signal && present(u) >= 2)
+            .count();
+        assert!(more > signal.len() / 2, "{more} of {}", signal.len());
+        for u in admitting.iter().filter(|u| u.raw.signal) {
+            let sum = u.raw.share[..3].iter().sum::<f32>() + u.raw.unexplained;
+            assert!((sum - 1.0).abs() < 1e-4, "{sum}");
+            for f in 0..3 {
+                assert!(u.present[f] || u.raw.share[f] == 0.0);
+            }
+        }
+        // The block size still changes nothing.
+        assert_eq!(run(&with_admit(Some(0.05)), &x, 333), admitting);
     }
 
     #[test]

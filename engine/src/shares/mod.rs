@@ -23,7 +23,7 @@ pub use estimator::{
     Shares, SharesError, SharesEstimator, SharesMode, SharesSettings, SharesUpdate,
 };
 pub use presence::{
-    PresenceModel, PresenceTraining, ShareNetwork, ShareTraining, train_presence,
-    train_share_network,
+    DEFAULT_SHARE_ADMIT, PresenceModel, PresenceTraining, ShareNetwork, ShareTraining,
+    train_presence, train_share_network,
 };
 pub use tracker::SharesTracker;

@@ -96,7 +96,9 @@ pub struct PresenceModel {
 /// training mixes on cross-entropy. The estimator multiplies the amount stage's family
 /// energies by its output raised to [`ShareNetwork::exponent`] (a weighted geometric blend
 /// of the two estimates, renormalised), so a family the presence stage admitted but whose
-/// sound the network does not hear is held down.
+/// sound the network does not hear is held down. Where the network gives a family at least
+/// [`ShareNetwork::admit`], the family takes part in the amount stage even when the presence
+/// stage left it out (the network recovers misses the presence thresholds make).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ShareNetwork {
     /// Hidden units (1..=[`MAX_HIDDEN`]).
@@ -111,6 +113,10 @@ pub struct ShareNetwork {
     pub b2: Vec<f32>,
     /// Exponent of the network's shares in the blend (0: no effect).
     pub exponent: f32,
+    /// Share (0 < admit ≤ 1) from which the network admits a family to the amount stage that
+    /// the presence stage left out; `None` (palettes written before it existed): never.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub admit: Option<f32>,
 }
 
 impl PresenceModel {
@@ -245,6 +251,11 @@ impl PresenceModel {
 }
 
 impl ShareNetwork {
+    /// Whether the network's share `r` admits a family on its own.
+    pub fn admits(&self, r: f32) -> bool {
+        self.admit.is_some_and(|a| r >= a)
+    }
+
     /// Checks the shapes and values against `features` inputs and `families` outputs.
     fn check(&self, features: usize, families: usize) -> Result<(), String> {
         if !(1..=MAX_HIDDEN).contains(&self.hidden) {
@@ -274,6 +285,13 @@ impl ShareNetwork {
             return Err(format!(
                 "share network exponent {} is outside 0..={MAX_SHARE_EXPONENT}",
                 self.exponent
+            ));
+        }
+        if let Some(a) = self.admit
+            && !(a > 0.0 && a <= 1.0)
+        {
+            return Err(format!(
+                "share network admit {a} is outside 0 (excluded) ..= 1"
             ));
         }
         Ok(())
@@ -365,6 +383,8 @@ pub struct ShareTraining {
     pub l2: f32,
     /// [`ShareNetwork::exponent`] of the trained network.
     pub exponent: f32,
+    /// [`ShareNetwork::admit`] of the trained network (0: none).
+    pub admit: f32,
 }
 
 impl Default for ShareTraining {
@@ -376,9 +396,14 @@ impl Default for ShareTraining {
             learning_rate: 1e-3,
             l2: 1e-3,
             exponent: 0.5,
+            admit: DEFAULT_SHARE_ADMIT,
         }
     }
 }
+
+/// The default [`ShareNetwork::admit`]: chosen by measurement on the built-in palette (`weft
+/// palette check --mixes 60`, energy misattributed per family; see `cargo xtask palette`).
+pub const DEFAULT_SHARE_ADMIT: f32 = 0.25;
 
 impl Default for PresenceTraining {
     fn default() -> Self {
@@ -616,6 +641,7 @@ pub fn train_share_network(
         w2: p.w2,
         b2: p.b2,
         exponent: t.exponent.clamp(0.0, MAX_SHARE_EXPONENT),
+        admit: (t.admit > 0.0).then(|| t.admit.min(1.0)),
     };
     Some((net, tv_pct))
 }
@@ -1261,13 +1287,15 @@ mod tests {
                 learning_rate: 1e-2,
                 l2: 0.0,
                 exponent: 0.75,
+                admit: 0.3,
             },
             ..PresenceTraining::default()
         };
         let mut model = train_presence(&rows, d, &labels, families, &opts);
         assert!(model.shares.is_none(), "trained only on request");
         let (net, held_tv) = train_share_network(&rows, &shares, &model, &opts).expect("trained");
-        assert_eq!((net.hidden, net.exponent), (16, 0.75));
+        assert_eq!((net.hidden, net.exponent, net.admit), (16, 0.75, Some(0.3)));
+        assert!(net.admits(0.3) && !net.admits(0.29));
         // The uniform guess misattributes about 20 % of these shares; the network, on rows it
         // never saw, far less.
         let uniform: f64 = shares
@@ -1317,6 +1345,9 @@ mod tests {
             .contains("w2")
         );
         assert!(bad(&|n| n.exponent = 5.0).contains("exponent"));
+        for a in [0.0, -0.1, 1.5, f32::NAN] {
+            assert!(bad(&|n| n.admit = Some(a)).contains("admit"), "{a}");
+        }
         assert!(bad(&|n| n.b1[0] = f32::NAN).contains("not finite"));
         assert!(bad(&|n| n.hidden = MAX_HIDDEN + 1).contains("hidden"));
         // A model without the network (every palette written before it) reads as before.
@@ -1331,6 +1362,30 @@ mod tests {
         let back: PresenceModel =
             serde_json::from_str(&serde_json::to_string(&model).expect("json")).expect("loads");
         assert_eq!(back, model);
+        // A network written before `admit` existed reads as one that never admits.
+        let mut old = model.clone();
+        old.shares.as_mut().expect("net").admit = None;
+        let json = serde_json::to_string(&old).expect("json");
+        assert!(json.contains("\"exponent\"") && !json.contains("admit"));
+        let back: PresenceModel = serde_json::from_str(&json).expect("loads");
+        let net = back.shares.as_ref().expect("net");
+        assert!(net.admit.is_none() && !net.admits(1.0));
+        // Trained with admit 0, a network never admits.
+        let none = ShareTraining {
+            admit: 0.0,
+            ..opts.shares
+        };
+        let (net, _) = train_share_network(
+            &rows,
+            &shares,
+            &model,
+            &PresenceTraining {
+                shares: none,
+                ..opts
+            },
+        )
+        .expect("trained");
+        assert_eq!(net.admit, None);
     }
 
     #[test]
