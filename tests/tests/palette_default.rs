@@ -3,7 +3,7 @@
 
 use weft_engine::palette::{Palette, render_mix};
 use weft_engine::scene::{ClipBank, Composer, Mix, SoundFontRenderer, general_midi_voicings};
-use weft_engine::shares::{SharesSettings, SharesTracker, SharesUpdate};
+use weft_engine::shares::{DEFAULT_SHARE_ADMIT, SharesSettings, SharesTracker, SharesUpdate};
 
 #[global_allocator]
 static ALLOCATOR: assert_no_alloc::AllocDisabler = assert_no_alloc::AllocDisabler;
@@ -48,9 +48,11 @@ fn run(palette: &Palette, x: &[f32], block: usize) -> Vec<SharesUpdate> {
 #[test]
 fn invariants_hold_on_rendered_mixes() {
     let palette = Palette::default_palette();
+    let net = palette.presence().and_then(|m| m.shares.as_ref());
     assert!(
-        palette.presence().and_then(|m| m.shares.as_ref()).is_some(),
-        "the built-in palette carries a direct share network (cargo xtask palette)"
+        net.is_some_and(|n| n.admit == Some(DEFAULT_SHARE_ADMIT)),
+        "the built-in palette carries a direct share network that admits families at the \
+         default share (cargo xtask palette)"
     );
     let nf = palette.families().len();
     for seed in [3_u64, 4] {
