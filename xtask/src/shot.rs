@@ -293,9 +293,9 @@ fn check_snapshot(dir: &Path, with_model: bool, seconds: f64) -> Result<()> {
         .with_context(|| format!("no snapshot folder {}", dir.display()))?
         .filter_map(Result::ok)
         .find(|e| {
-            e.file_name()
-                .to_string_lossy()
-                .starts_with("weft-snapshot-")
+            // Not a `.json.part` left by a dump the stop interrupted (the dump renames into place).
+            let name = e.file_name().to_string_lossy().into_owned();
+            name.starts_with("weft-snapshot-") && name.ends_with(".json")
         })
         .context("the standalone wrote no snapshot")?;
     let json = read_json(&entry.path())?;
