@@ -40,6 +40,8 @@
 use super::fine::FINE_VALUES;
 use super::nmf::dot;
 use crate::scene::SceneRng;
+use ndarray::linalg::general_mat_mul;
+use ndarray::{Array2, ArrayView1, ArrayView2, ArrayViewMut2, Axis, Slice};
 use serde::{Deserialize, Serialize};
 
 /// The name of the feature schema below, which new presence models are trained on.
@@ -751,11 +753,10 @@ struct Schedule {
 /// used).
 fn fit_member(data: &FitData, schedule: &Schedule, member: usize) -> Params {
     let FitData {
-        z,
         features,
-        targets,
         families,
         fit,
+        ..
     } = *data;
     let hidden = schedule.hidden;
     let mut rng = SceneRng::derive(schedule.seed, schedule.stream + 1000 * member as u64);
@@ -776,9 +777,8 @@ fn fit_member(data: &FitData, schedule: &Schedule, member: usize) -> Params {
     let mut adam = Adam::new(&params);
     let mut fit = fit.to_vec();
     let mut grads = params.zeros_like();
-    let mut hbuf = vec![0.0_f32; hidden];
-    let mut out = vec![0.0_f32; families];
-    let mut dh = vec![0.0_f32; hidden];
+    let batch_rows = schedule.batch.max(1);
+    let mut scratch = BatchScratch::new(batch_rows, features, hidden, families);
     for epoch in 0..schedule.epochs {
         // Cosine decay of the step size over the epochs, down to a twentieth (I. Loshchilov and
         // F. Hutter, "SGDR", ICLR 2017, without restarts): the last epochs settle instead of
@@ -788,46 +788,98 @@ fn fit_member(data: &FitData, schedule: &Schedule, member: usize) -> Params {
             * (FINAL_STEP_FRACTION
                 + (1.0 - FINAL_STEP_FRACTION) * 0.5 * (1.0 + (std::f32::consts::PI * t).cos()));
         rng.shuffle(&mut fit);
-        for batch in fit.chunks(schedule.batch.max(1)) {
-            grads.fill(0.0);
-            for &i in batch {
-                let x = &z[i * features..(i + 1) * features];
-                forward(&params, x, features, hidden, &mut hbuf, &mut out);
-                targets.gradient(i, &mut out);
-                let inp: &[f32] = if hidden == 0 { x } else { &hbuf };
-                dh.fill(0.0);
-                for (f, &g) in out.iter().enumerate() {
-                    grads.b2[f] += g;
-                    let row = &mut grads.w2[f * inputs..(f + 1) * inputs];
-                    for (gw, &v) in row.iter_mut().zip(inp) {
-                        *gw += g * v;
-                    }
-                    if hidden > 0 {
-                        for (d, &w) in dh.iter_mut().zip(&params.w2[f * inputs..(f + 1) * inputs]) {
-                            *d += g * w;
-                        }
-                    }
-                }
-                if hidden > 0 {
-                    for j in 0..hidden {
-                        if hbuf[j] <= 0.0 {
-                            continue;
-                        }
-                        let g = dh[j];
-                        grads.b1[j] += g;
-                        for (gw, &v) in grads.w1[j * features..(j + 1) * features].iter_mut().zip(x)
-                        {
-                            *gw += g * v;
-                        }
-                    }
-                }
-            }
+        for batch in fit.chunks(batch_rows) {
+            batch_gradients(data, &params, hidden, batch, &mut scratch, &mut grads);
             let inv = 1.0 / batch.len() as f32;
             grads.scale_add_l2(inv, schedule.l2, &params);
             adam.step(&mut params, &grads, lr);
         }
     }
     params
+}
+
+/// The matrices of one batch, allocated once per fit.
+struct BatchScratch {
+    /// Standardised rows, `batch × features`.
+    x: Array2<f32>,
+    /// Hidden activations, `batch × hidden`.
+    h: Array2<f32>,
+    /// Logits, then their gradients, `batch × families`.
+    g: Array2<f32>,
+    /// Gradients of the hidden activations, `batch × hidden`.
+    dh: Array2<f32>,
+}
+
+impl BatchScratch {
+    fn new(batch: usize, features: usize, hidden: usize, families: usize) -> Self {
+        Self {
+            x: Array2::zeros((batch, features)),
+            h: Array2::zeros((batch, hidden)),
+            g: Array2::zeros((batch, families)),
+            dh: Array2::zeros((batch, hidden)),
+        }
+    }
+}
+
+/// The summed loss gradients of the rows `batch` into `grads`, as matrix products over the
+/// whole batch (the same sums as row by row, in another order).
+fn batch_gradients(
+    data: &FitData,
+    p: &Params,
+    hidden: usize,
+    batch: &[usize],
+    s: &mut BatchScratch,
+    grads: &mut Params,
+) {
+    let (d, families, b) = (data.features, data.families, batch.len());
+    let mut x = s.x.slice_axis_mut(Axis(0), Slice::from(..b));
+    for (mut row, &i) in x.rows_mut().into_iter().zip(batch) {
+        row.assign(&ArrayView1::from(&data.z[i * d..(i + 1) * d]));
+    }
+    let x = s.x.slice_axis(Axis(0), Slice::from(..b));
+    let mut h = s.h.slice_axis_mut(Axis(0), Slice::from(..b));
+    if hidden > 0 {
+        let w1 = ArrayView2::from_shape((hidden, d), &p.w1).expect("w1 is hidden × features");
+        general_mat_mul(1.0, &x, &w1.t(), 0.0, &mut h);
+        for mut row in h.rows_mut() {
+            for (v, &bias) in row.iter_mut().zip(&p.b1) {
+                *v = (*v + bias).max(0.0);
+            }
+        }
+    }
+    let inputs = if hidden == 0 { x } else { h.view() };
+    let n_in = inputs.ncols();
+    let w2 = ArrayView2::from_shape((families, n_in), &p.w2).expect("w2 is families × inputs");
+    let mut g = s.g.slice_axis_mut(Axis(0), Slice::from(..b));
+    general_mat_mul(1.0, &inputs, &w2.t(), 0.0, &mut g);
+    for (r, mut row) in g.rows_mut().into_iter().enumerate() {
+        let out = row.as_slice_mut().expect("rows are contiguous");
+        for (o, &bias) in out.iter_mut().zip(&p.b2) {
+            *o += bias;
+        }
+        data.targets.gradient(batch[r], out);
+    }
+    for (gb, col) in grads.b2.iter_mut().zip(g.columns()) {
+        *gb = col.sum();
+    }
+    let mut gw2 = ArrayViewMut2::from_shape((families, n_in), &mut grads.w2)
+        .expect("w2 is families × inputs");
+    general_mat_mul(1.0, &g.t(), &inputs, 0.0, &mut gw2);
+    if hidden > 0 {
+        let mut dh = s.dh.slice_axis_mut(Axis(0), Slice::from(..b));
+        general_mat_mul(1.0, &g, &w2, 0.0, &mut dh);
+        dh.zip_mut_with(&h, |d, &hv| {
+            if hv <= 0.0 {
+                *d = 0.0;
+            }
+        });
+        for (gb, col) in grads.b1.iter_mut().zip(dh.columns()) {
+            *gb = col.sum();
+        }
+        let mut gw1 =
+            ArrayViewMut2::from_shape((hidden, d), &mut grads.w1).expect("w1 is hidden × features");
+        general_mat_mul(1.0, &dh.t(), &x, 0.0, &mut gw1);
+    }
 }
 
 /// The step size of the last epoch as a fraction of [`PresenceTraining::learning_rate`].
@@ -870,24 +922,13 @@ fn forward(p: &Params, x: &[f32], d: usize, hidden: usize, hbuf: &mut [f32], out
         x
     } else {
         for (j, hv) in hbuf.iter_mut().enumerate() {
-            let a = p.b1[j]
-                + p.w1[j * d..(j + 1) * d]
-                    .iter()
-                    .zip(x)
-                    .map(|(w, v)| w * v)
-                    .sum::<f32>();
-            *hv = a.max(0.0);
+            *hv = (p.b1[j] + dot(&p.w1[j * d..(j + 1) * d], x)).max(0.0);
         }
         hbuf
     };
     let n = inputs.len();
     for (f, o) in out.iter_mut().enumerate() {
-        *o = p.b2[f]
-            + p.w2[f * n..(f + 1) * n]
-                .iter()
-                .zip(inputs)
-                .map(|(w, v)| w * v)
-                .sum::<f32>();
+        *o = p.b2[f] + dot(&p.w2[f * n..(f + 1) * n], inputs);
     }
 }
 
@@ -906,11 +947,6 @@ impl Params {
             b1: vec![0.0; self.b1.len()],
             w2: vec![0.0; self.w2.len()],
             b2: vec![0.0; self.b2.len()],
-        }
-    }
-    fn fill(&mut self, v: f32) {
-        for a in [&mut self.w1, &mut self.b1, &mut self.w2, &mut self.b2] {
-            a.fill(v);
         }
     }
     fn scale_add_l2(&mut self, k: f32, l2: f32, p: &Self) {
@@ -1198,6 +1234,100 @@ mod tests {
             a[0] > 0.85 && a[1] < 0.15 && (a[2] - 0.5).abs() < 1e-6,
             "{a:?}"
         );
+    }
+
+    /// The summed loss gradients of `batch`, one row at a time: the chain rule written out
+    /// (independent of the matrix products it checks).
+    fn row_by_row_gradients(data: &FitData, p: &Params, hidden: usize, batch: &[usize]) -> Params {
+        let (d, families) = (data.features, data.families);
+        let mut grads = p.zeros_like();
+        let mut hbuf = vec![0.0_f32; hidden];
+        let mut out = vec![0.0_f32; families];
+        for &i in batch {
+            let x = &data.z[i * d..(i + 1) * d];
+            forward(p, x, d, hidden, &mut hbuf, &mut out);
+            data.targets.gradient(i, &mut out);
+            let inp: &[f32] = if hidden == 0 { x } else { &hbuf };
+            let n_in = inp.len();
+            let mut dh = vec![0.0_f32; hidden];
+            for (f, &g) in out.iter().enumerate() {
+                grads.b2[f] += g;
+                let w2 = &p.w2[f * n_in..(f + 1) * n_in];
+                for (k, gw) in grads.w2[f * n_in..(f + 1) * n_in].iter_mut().enumerate() {
+                    *gw += g * inp[k];
+                }
+                for (j, dj) in dh.iter_mut().enumerate() {
+                    *dj += g * w2[j];
+                }
+            }
+            for (j, &dj) in dh.iter().enumerate().filter(|&(j, _)| hbuf[j] > 0.0) {
+                grads.b1[j] += dj;
+                for (k, gw) in grads.w1[j * d..(j + 1) * d].iter_mut().enumerate() {
+                    *gw += dj * x[k];
+                }
+            }
+        }
+        grads
+    }
+
+    #[test]
+    fn batch_gradients_are_the_sums_of_the_rows_gradients() {
+        let (n, d, families) = (50, 7, 3);
+        let mut rng = SceneRng::new(13);
+        let z: Vec<f32> = (0..n * d).map(|_| rng.normal() as f32).collect();
+        let labels: Vec<bool> = (0..n * families).map(|_| rng.unit() < 0.4).collect();
+        let pos_weight = [1.5, 0.7, 2.0];
+        let (_, shares) = share_rows(3, n);
+        let fit: Vec<usize> = (0..n).collect();
+        // Rows out of order, and a batch shorter than the scratch (the last batch of an epoch).
+        let batch = [7, 3, 41, 0, 19, 22, 5, 48, 30, 11, 2];
+        for hidden in [0, 5] {
+            for targets in [
+                Targets::Presence {
+                    labels: &labels,
+                    pos_weight: &pos_weight,
+                },
+                Targets::Shares(&shares),
+            ] {
+                let data = FitData {
+                    z: &z,
+                    features: d,
+                    targets,
+                    families,
+                    fit: &fit,
+                };
+                let inputs = if hidden == 0 { d } else { hidden };
+                let mut draw = |len: usize| (0..len).map(|_| rng.normal() as f32).collect();
+                let p = Params {
+                    w1: draw(hidden * d),
+                    b1: draw(hidden),
+                    w2: draw(families * inputs),
+                    b2: draw(families),
+                };
+                let mut scratch = BatchScratch::new(16, d, hidden, families);
+                let mut grads = p.zeros_like();
+                // Stale values in the buffers must not leak into the sums.
+                grads.w2.fill(9.0);
+                scratch.h.fill(3.0);
+                batch_gradients(&data, &p, hidden, &batch, &mut scratch, &mut grads);
+                let want = row_by_row_gradients(&data, &p, hidden, &batch);
+                assert!(want.w2.iter().any(|&g| g.abs() > 0.1), "a real gradient");
+                for (name, a, b) in [
+                    ("w1", &grads.w1, &want.w1),
+                    ("b1", &grads.b1, &want.b1),
+                    ("w2", &grads.w2, &want.w2),
+                    ("b2", &grads.b2, &want.b2),
+                ] {
+                    assert_eq!(a.len(), b.len(), "{name}");
+                    for (x, y) in a.iter().zip(b) {
+                        assert!(
+                            (x - y).abs() <= 1e-4 * (1.0 + y.abs()),
+                            "hidden {hidden} {name}: {x} vs {y}"
+                        );
+                    }
+                }
+            }
+        }
     }
 
     /// `n` rows of two uniform features (seed `seed`) and two families: family 0 present when
