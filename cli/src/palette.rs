@@ -101,7 +101,7 @@ pub struct BuildOptions {
     #[arg(long, default_value_t = PresenceTraining::default().epochs)]
     pub epochs: usize,
     /// Networks in the presence model, fitted from different starts, whose logits are
-    /// averaged (their hidden units together at most 256).
+    /// averaged (their hidden units together at most 512).
     #[arg(long, default_value_t = PresenceTraining::default().members, value_parser = parse_members)]
     pub members: usize,
     /// L2 penalty of the presence model.

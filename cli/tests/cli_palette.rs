@@ -21,15 +21,15 @@ fn learn_nowhere(extra: &[&str]) -> (bool, String) {
 #[test]
 fn presence_ensembles_wider_than_a_palette_holds_are_refused_first() {
     // The folder does not exist: the option error must come before it is looked at.
-    let (ok, err) = learn_nowhere(&["--hidden", "128", "--members", "3"]);
+    let (ok, err) = learn_nowhere(&["--hidden", "128", "--members", "5"]);
     assert!(!ok);
     assert!(
-        err.contains("384 hidden units") && err.contains("at most 256"),
+        err.contains("640 hidden units") && err.contains("at most 512"),
         "{err}"
     );
     let (ok, err) = learn_nowhere(&["--hidden", &usize::MAX.to_string(), "--members", "2"]);
     assert!(!ok);
-    assert!(err.contains("at most 256"), "{err}");
+    assert!(err.contains("at most 512"), "{err}");
     let (ok, err) = learn_nowhere(&["--members", "0"]);
     assert!(!ok);
     assert!(err.contains("from 1 to 16"), "{err}");
@@ -41,9 +41,9 @@ fn presence_ensembles_wider_than_a_palette_holds_are_refused_first() {
 
 #[test]
 fn direct_share_network_options_are_refused_first_when_out_of_range() {
-    let (ok, err) = learn_nowhere(&["--share-hidden", "257"]);
+    let (ok, err) = learn_nowhere(&["--share-hidden", "513"]);
     assert!(!ok);
-    assert!(err.contains("from 0 to 256"), "{err}");
+    assert!(err.contains("from 0 to 512"), "{err}");
     for bad in ["-0.5", "4.5", "NaN"] {
         let (ok, err) = learn_nowhere(&[&format!("--share-exponent={bad}")]);
         assert!(!ok);

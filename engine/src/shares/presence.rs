@@ -52,7 +52,7 @@ pub const PRESENCE_SCHEMA_V1: &str = "presence-v1";
 /// Groups of bands for the spectral-shape and movement features.
 pub const COARSE_BANDS: usize = 32;
 /// The largest hidden layer a palette may carry.
-pub const MAX_HIDDEN: usize = 256;
+pub const MAX_HIDDEN: usize = 512;
 
 /// Number of presence features for `families` families with `atoms` atoms in all
 /// ([`PRESENCE_SCHEMA`]).
