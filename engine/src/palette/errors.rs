@@ -10,12 +10,12 @@ pub enum PaletteError {
     NotAPalette,
     /// The file's format version is not one this Weft reads.
     #[error(
-        "palette format version {found} is not supported (this Weft reads version {supported})"
+        "palette format version {found} is not supported (this Weft reads versions 1 to {supported})"
     )]
     Version {
         /// The version the file declares.
         found: u32,
-        /// The version this build reads.
+        /// The newest version this build reads.
         supported: u32,
     },
     /// The file ends before the sizes it declares.

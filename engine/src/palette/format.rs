@@ -5,12 +5,19 @@
 //! | 8 | magic `WEFTPAL\0` |
 //! | 4 | format version, u32 little-endian ([`FORMAT_VERSION`]) |
 //! | 4 | header length `n`, u32 little-endian, at most [`MAX_HEADER_BYTES`] |
-//! | n | header, UTF-8 JSON: name, families, sections, analysis, atom counts, presence model, provenance |
+//! | n | header, UTF-8 JSON: name, families, sections, analysis, atom counts, presence model (its shapes, thresholds and settings), provenance |
 //! | 8 | number of atom values `m`, u64 little-endian (must equal Σ counts × bands × stack) |
 //! | 4·m | atom values, f32 little-endian, family by family, atom by atom |
+//! | 8 | number of weight values `w`, u64 little-endian (must equal what the presence model's shapes need; 0 without one) |
+//! | 4·w | the presence model's weights, f32 little-endian: mean, scale, w1, b1, w2, b2, then the direct share network's w1, b1, w2, b2 |
 //!
 //! Nothing may follow. Every size is checked against the bytes left and against a limit before
 //! anything is allocated, so a hostile file costs at most its own size.
+//!
+//! Version 1 files, whose headers carried the weights as JSON numbers and which end after the
+//! atoms, still load. Version 2 keeps the weights in binary: the same values in about a third of
+//! the bytes, and the header no longer grows with the networks, so its limit does not bound
+//! them.
 
 use super::{AnalysisSpec, Family, Palette, PaletteError, Provenance};
 use crate::shares::PresenceModel;
@@ -18,8 +25,8 @@ use serde::{Deserialize, Serialize};
 
 /// The first eight bytes of every palette file.
 pub const MAGIC: &[u8; 8] = b"WEFTPAL\0";
-/// The format version this build writes and reads.
-pub const FORMAT_VERSION: u32 = 1;
+/// The format version this build writes; it reads this one and every earlier one.
+pub const FORMAT_VERSION: u32 = 2;
 /// The largest header accepted, bytes.
 pub const MAX_HEADER_BYTES: u64 = 8 << 20;
 /// The largest palette file accepted, bytes.
@@ -58,6 +65,31 @@ impl<'a> Reader<'a> {
         Ok(s)
     }
 
+    /// A u64 count and that many f32 values, the count bounded by the bytes left before
+    /// anything is allocated.
+    fn values(
+        &mut self,
+        count_what: &'static str,
+        limit_what: &'static str,
+        what: &'static str,
+    ) -> Result<Vec<f32>, PaletteError> {
+        let count = u64::from_le_bytes(self.array::<8>(count_what)?);
+        let max_values = (MAX_FILE_BYTES / 4)
+            .min((self.bytes.len() as u64).saturating_sub(self.at as u64) / 4 + 1);
+        if count > max_values {
+            return Err(PaletteError::Limit {
+                what: limit_what,
+                value: count,
+                max: max_values,
+            });
+        }
+        let raw = self.take(count * 4, what)?;
+        Ok(raw
+            .chunks_exact(4)
+            .map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]))
+            .collect())
+    }
+
     fn array<const N: usize>(&mut self, what: &'static str) -> Result<[u8; N], PaletteError> {
         let s = self.take(N as u64, what)?;
         let mut a = [0u8; N];
@@ -66,27 +98,78 @@ impl<'a> Reader<'a> {
     }
 }
 
+/// Reads a version 2 file's weight section into the header's presence model, whose shapes say
+/// how many values each array takes (its families: one per threshold; whether they match the
+/// palette's is for [`Palette::new`] to check, with the other rules).
+fn read_weights(r: &mut Reader<'_>, header: &mut Header) -> Result<(), PaletteError> {
+    let weights = r.values("weight count", "weight values", "weights")?;
+    let invalid = |reason: String| PaletteError::Invalid {
+        field: "presence",
+        reason,
+    };
+    let Some(model) = &mut header.presence else {
+        return if weights.is_empty() {
+            Ok(())
+        } else {
+            Err(invalid(format!(
+                "the file holds {} weight values but no presence model",
+                weights.len()
+            )))
+        };
+    };
+    let lengths = model.weight_lengths(model.thresholds.len());
+    let needed = lengths.iter().fold(0usize, |a, &l| a.saturating_add(l));
+    if needed != weights.len() {
+        return Err(invalid(format!(
+            "the file holds {} weight values; the model's shapes need {needed}",
+            weights.len()
+        )));
+    }
+    let mut at = 0;
+    for (array, len) in model.weight_arrays_mut().into_iter().zip(lengths) {
+        if !array.is_empty() {
+            return Err(invalid(
+                "weights in the header (format version 2 keeps them in the binary section)".into(),
+            ));
+        }
+        array.extend_from_slice(&weights[at..at + len]);
+        at += len;
+    }
+    Ok(())
+}
+
 impl Palette {
     /// Encodes the palette as a palette file.
     pub fn to_bytes(&self) -> Vec<u8> {
+        let mut presence = self.presence.clone();
+        let mut weights = Vec::new();
+        if let Some(m) = &mut presence {
+            for a in m.weight_arrays_mut() {
+                weights.append(a);
+            }
+        }
         let header = Header {
             name: self.name.clone(),
             families: self.families.clone(),
             sections: self.sections.clone(),
             analysis: self.analysis,
             atom_counts: self.atom_counts.clone(),
-            presence: self.presence.clone(),
+            presence,
             provenance: self.provenance.clone(),
         };
         // Serialising plain data with string keys cannot fail.
         let json = serde_json::to_vec(&header).unwrap_or_default();
-        let mut out = Vec::with_capacity(24 + json.len() + 4 * self.atoms.len());
+        let mut out = Vec::with_capacity(32 + json.len() + 4 * (self.atoms.len() + weights.len()));
         out.extend_from_slice(MAGIC);
         out.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
         out.extend_from_slice(&(json.len() as u32).to_le_bytes());
         out.extend_from_slice(&json);
         out.extend_from_slice(&(self.atoms.len() as u64).to_le_bytes());
         for v in &self.atoms {
+            out.extend_from_slice(&v.to_le_bytes());
+        }
+        out.extend_from_slice(&(weights.len() as u64).to_le_bytes());
+        for v in &weights {
             out.extend_from_slice(&v.to_le_bytes());
         }
         out
@@ -106,7 +189,7 @@ impl Palette {
             return Err(PaletteError::NotAPalette);
         }
         let version = u32::from_le_bytes(r.array::<4>("version")?);
-        if version != FORMAT_VERSION {
+        if !(1..=FORMAT_VERSION).contains(&version) {
             return Err(PaletteError::Version {
                 found: version,
                 supported: FORMAT_VERSION,
@@ -121,23 +204,12 @@ impl Palette {
             });
         }
         let json = r.take(header_len, "header")?;
-        let header: Header =
+        let mut header: Header =
             serde_json::from_slice(json).map_err(|source| PaletteError::Header { source })?;
-        let count = u64::from_le_bytes(r.array::<8>("atom count")?);
-        let max_values =
-            (MAX_FILE_BYTES / 4).min((bytes.len() as u64).saturating_sub(r.at as u64) / 4 + 1);
-        if count > max_values {
-            return Err(PaletteError::Limit {
-                what: "atom values",
-                value: count,
-                max: max_values,
-            });
+        let atoms = r.values("atom count", "atom values", "atoms")?;
+        if version >= 2 {
+            read_weights(&mut r, &mut header)?;
         }
-        let raw = r.take(count * 4, "atoms")?;
-        let atoms: Vec<f32> = raw
-            .chunks_exact(4)
-            .map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]))
-            .collect();
         let extra = (bytes.len() - r.at) as u64;
         if extra > 0 {
             return Err(PaletteError::TrailingBytes { extra });
@@ -239,7 +311,7 @@ mod tests {
             Palette::from_bytes(&v),
             Err(PaletteError::Version {
                 found: 9,
-                supported: 1
+                supported: FORMAT_VERSION
             })
         ));
         for cut in [10, 20, good.len() - 1] {
@@ -280,6 +352,135 @@ mod tests {
             Palette::from_bytes(&v),
             Err(PaletteError::Invalid { field: "atoms", .. })
         ));
+    }
+
+    /// The layout of format version 1: the weights inside the header as JSON numbers, nothing
+    /// after the atoms.
+    fn to_bytes_v1(p: &Palette) -> Vec<u8> {
+        let header = Header {
+            name: p.name.clone(),
+            families: p.families.clone(),
+            sections: p.sections.clone(),
+            analysis: p.analysis,
+            atom_counts: p.atom_counts.clone(),
+            presence: p.presence.clone(),
+            provenance: p.provenance.clone(),
+        };
+        let json = serde_json::to_vec(&header).expect("json");
+        let mut out = MAGIC.to_vec();
+        out.extend_from_slice(&1u32.to_le_bytes());
+        out.extend_from_slice(&(json.len() as u32).to_le_bytes());
+        out.extend_from_slice(&json);
+        out.extend_from_slice(&(p.atoms.len() as u64).to_le_bytes());
+        for v in &p.atoms {
+            out.extend_from_slice(&v.to_le_bytes());
+        }
+        out
+    }
+
+    /// Where a file's weight section starts (after the header and the atoms).
+    fn weights_at(bytes: &[u8]) -> usize {
+        let header_len = u32::from_le_bytes([bytes[12], bytes[13], bytes[14], bytes[15]]) as usize;
+        let at = 16 + header_len;
+        let atoms = u64::from_le_bytes(bytes[at..at + 8].try_into().expect("8 bytes")) as usize;
+        at + 8 + 4 * atoms
+    }
+
+    #[test]
+    fn version_1_files_still_load_and_version_2_keeps_the_weights_in_binary() {
+        let p = small(6, true);
+        let model = p.presence().expect("model");
+        let v1 = to_bytes_v1(&p);
+        assert_eq!(Palette::from_bytes(&v1).expect("a version 1 file loads"), p);
+        let v2 = p.to_bytes();
+        assert_eq!(u32::from_le_bytes([v2[8], v2[9], v2[10], v2[11]]), 2);
+        // The header names the shapes but holds no weight array.
+        let header_len = u32::from_le_bytes([v2[12], v2[13], v2[14], v2[15]]) as usize;
+        let header: serde_json::Value =
+            serde_json::from_slice(&v2[16..16 + header_len]).expect("json");
+        for key in ["mean", "scale", "w1", "b1", "w2", "b2"] {
+            assert!(header["presence"].get(key).is_none(), "{key} in the header");
+        }
+        assert_eq!(header["presence"]["hidden"], model.hidden);
+        let at = weights_at(&v2);
+        let count = u64::from_le_bytes(v2[at..at + 8].try_into().expect("8 bytes")) as usize;
+        let expected = model.mean.len()
+            + model.scale.len()
+            + model.w1.len()
+            + model.b1.len()
+            + model.w2.len()
+            + model.b2.len();
+        assert_eq!(count, expected);
+        assert_eq!(v2.len(), at + 8 + 4 * count);
+        // The first weight is the first feature's mean, bit for bit.
+        assert_eq!(
+            f32::from_le_bytes(v2[at + 8..at + 12].try_into().expect("4 bytes")).to_bits(),
+            model.mean[0].to_bits()
+        );
+        assert!(v2.len() < v1.len(), "{} >= {}", v2.len(), v1.len());
+        // Without a presence model the weight section is empty.
+        let bare = small(6, false).to_bytes();
+        let at = weights_at(&bare);
+        assert_eq!(bare.len(), at + 8);
+        assert_eq!(u64::from_le_bytes(bare[at..].try_into().expect("8")), 0);
+    }
+
+    #[test]
+    fn damaged_weight_sections_are_refused_with_reasons() {
+        let good = small(7, true).to_bytes();
+        let at = weights_at(&good);
+        let count = u64::from_le_bytes(good[at..at + 8].try_into().expect("8 bytes"));
+        // One value fewer than the shapes need (and the file cut to match).
+        let mut v = good[..good.len() - 4].to_vec();
+        v[at..at + 8].copy_from_slice(&(count - 1).to_le_bytes());
+        match Palette::from_bytes(&v) {
+            Err(PaletteError::Invalid {
+                field: "presence",
+                reason,
+            }) => assert!(reason.contains("need"), "{reason}"),
+            other => panic!("{other:?}"),
+        }
+        // A hostile count is a limit, before anything is allocated.
+        let mut v = good.clone();
+        v[at..at + 8].copy_from_slice(&u64::MAX.to_le_bytes());
+        assert!(matches!(
+            Palette::from_bytes(&v),
+            Err(PaletteError::Limit {
+                what: "weight values",
+                ..
+            })
+        ));
+        // Weights but no model.
+        let mut bare = small(7, false).to_bytes();
+        let at_bare = weights_at(&bare);
+        bare[at_bare..].copy_from_slice(&1u64.to_le_bytes());
+        bare.extend_from_slice(&0f32.to_le_bytes());
+        assert!(matches!(
+            Palette::from_bytes(&bare),
+            Err(PaletteError::Invalid {
+                field: "presence",
+                ..
+            })
+        ));
+        // A NaN weight is found by the model's own checks.
+        let mut v = good.clone();
+        v[at + 8..at + 12].copy_from_slice(&f32::NAN.to_le_bytes());
+        assert!(matches!(
+            Palette::from_bytes(&v),
+            Err(PaletteError::Invalid {
+                field: "presence",
+                ..
+            })
+        ));
+        // A version 2 header that also carries weights is refused: one place for each value.
+        let r = with_header_edit(|h| h["presence"]["b2"] = serde_json::json!([0.0, 0.0]));
+        match r {
+            Err(PaletteError::Invalid {
+                field: "presence",
+                reason,
+            }) => assert!(reason.contains("binary section"), "{reason}"),
+            other => panic!("{other:?}"),
+        }
     }
 
     fn with_header_edit(edit: impl Fn(&mut serde_json::Value)) -> Result<Palette, PaletteError> {

@@ -73,18 +73,24 @@ pub struct PresenceModel {
     /// Number of input features.
     pub features: usize,
     /// Mean of each feature over the training rows (standardisation).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub mean: Vec<f32>,
     /// Standard deviation of each feature over the training rows (1 where it was 0).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub scale: Vec<f32>,
     /// Hidden units (0: logistic regression on the features).
     pub hidden: usize,
     /// Hidden weights, `hidden × features`, row-major.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub w1: Vec<f32>,
     /// Hidden biases.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub b1: Vec<f32>,
     /// Output weights, `families × inputs` where inputs is `hidden` (or `features`).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub w2: Vec<f32>,
     /// Output biases, one per family.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub b2: Vec<f32>,
     /// Decision threshold on each family's probability.
     pub thresholds: Vec<f32>,
@@ -106,12 +112,16 @@ pub struct ShareNetwork {
     /// Hidden units (1..=[`MAX_HIDDEN`]).
     pub hidden: usize,
     /// Hidden weights, `hidden × features`, row-major.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub w1: Vec<f32>,
     /// Hidden biases.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub b1: Vec<f32>,
     /// Output weights, `families × hidden`, row-major.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub w2: Vec<f32>,
     /// Output biases, one per family.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub b2: Vec<f32>,
     /// Exponent of the network's shares in the blend (0: no effect).
     pub exponent: f32,
@@ -134,6 +144,49 @@ impl PresenceModel {
         } else {
             self.hidden
         }
+    }
+
+    /// The weight arrays a palette file keeps in its binary section (everything but the
+    /// thresholds), in file order: mean, scale, w1, b1, w2, b2, then the direct share
+    /// network's w1, b1, w2, b2.
+    pub(crate) fn weight_arrays_mut(&mut self) -> Vec<&mut Vec<f32>> {
+        let mut v = vec![
+            &mut self.mean,
+            &mut self.scale,
+            &mut self.w1,
+            &mut self.b1,
+            &mut self.w2,
+            &mut self.b2,
+        ];
+        if let Some(n) = &mut self.shares {
+            v.extend([&mut n.w1, &mut n.b1, &mut n.w2, &mut n.b2]);
+        }
+        v
+    }
+
+    /// The lengths the arrays of [`PresenceModel::weight_arrays_mut`] must have for
+    /// `families` families, from the shape fields alone (saturating, for untrusted headers).
+    pub(crate) fn weight_lengths(&self, families: usize) -> Vec<usize> {
+        let (d, h) = (self.features, self.hidden);
+        let inputs = if h == 0 { d } else { h };
+        let mut v = vec![
+            d,
+            d,
+            h.saturating_mul(d),
+            h,
+            families.saturating_mul(inputs),
+            families,
+        ];
+        if let Some(n) = &self.shares {
+            let hs = n.hidden;
+            v.extend([
+                hs.saturating_mul(d),
+                hs,
+                families.saturating_mul(hs),
+                families,
+            ]);
+        }
+        v
     }
 
     /// Checks the shapes and values; `Err` names the first problem.
