@@ -753,7 +753,7 @@ pub fn run_batch(
                 });
                 bar.inc(1);
                 let result = result.map_err(|err| {
-                    let reason = format!("{err:#}");
+                    let reason = weft_engine::error_chain(err.as_ref());
                     bar.suspend(|| eprintln!("weft: {}: {reason}", path.display()));
                     reason
                 });

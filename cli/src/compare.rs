@@ -186,7 +186,11 @@ pub fn run(args: &CompareArgs) -> Result<ExitCode, Failure> {
     }) {
         Ok(r) => r,
         Err(err) => {
-            eprintln!("weft: {}: {err:#}", args.file.display());
+            eprintln!(
+                "weft: {}: {}",
+                args.file.display(),
+                weft_engine::error_chain(err.as_ref())
+            );
             return Ok(ExitCode::from(1));
         }
     };

@@ -192,7 +192,7 @@ fn main() -> ExitCode {
                     eprintln!("weft: usage error: {u}");
                     ExitCode::from(2)
                 } else {
-                    eprintln!("weft: {err:#}");
+                    eprintln!("weft: {}", weft_engine::error_chain(err.as_ref()));
                     ExitCode::from(1)
                 }
             }
@@ -200,7 +200,7 @@ fn main() -> ExitCode {
         Command::Palette(args) => match palette::run(args) {
             Ok(()) => ExitCode::SUCCESS,
             Err(err) => {
-                eprintln!("weft: {err:#}");
+                eprintln!("weft: {}", weft_engine::error_chain(err.as_ref()));
                 ExitCode::from(1)
             }
         },
@@ -227,11 +227,11 @@ fn report_failure(outcome: Result<ExitCode, Failure>) -> ExitCode {
             ExitCode::from(2)
         }
         Err(Failure::Model(err)) => {
-            eprintln!("weft: {err:#}");
+            eprintln!("weft: {}", weft_engine::error_chain(err.as_ref()));
             ExitCode::from(3)
         }
         Err(Failure::Other(err)) => {
-            eprintln!("weft: {err:#}");
+            eprintln!("weft: {}", weft_engine::error_chain(err.as_ref()));
             ExitCode::from(1)
         }
     }

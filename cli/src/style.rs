@@ -251,10 +251,10 @@ pub fn run(args: StyleArgs) -> u8 {
                 eprintln!("weft: usage error: {usage}");
                 2
             } else if unusable {
-                eprintln!("weft: {err:#}");
+                eprintln!("weft: {}", weft_engine::error_chain(err.as_ref()));
                 3
             } else {
-                eprintln!("weft: {err:#}");
+                eprintln!("weft: {}", weft_engine::error_chain(err.as_ref()));
                 1
             }
         }
@@ -507,7 +507,7 @@ pub fn analyse_tracks(
                         windows: report.style_windows,
                         duration_s: report.duration_s,
                     }),
-                    Ok(Err(err)) => Err(format!("{err:#}")),
+                    Ok(Err(err)) => Err(weft_engine::error_chain(err.as_ref())),
                     Err(_) => Err("internal error while analysing (please report it)".to_owned()),
                 };
                 if let Err(reason) = &result {

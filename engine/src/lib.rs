@@ -37,6 +37,57 @@ pub use frames::{FrameConfig, Framer, FramingError};
 pub use level::{Level, SILENCE_FLOOR_DB};
 pub use timbre::{Descriptors, Timbre, TimbreOptions};
 
+/// An error and its sources in one line, joined by ": ", leaving out a source whose text the
+/// line already holds (an error that quotes its cause would otherwise say it twice).
+pub fn error_chain(err: &dyn std::error::Error) -> String {
+    let mut text = err.to_string();
+    let mut source = err.source();
+    while let Some(s) = source {
+        let part = s.to_string();
+        if !text.contains(&part) {
+            text.push_str(": ");
+            text.push_str(&part);
+        }
+        source = s.source();
+    }
+    text
+}
+
 #[cfg(test)]
 #[global_allocator]
 static ALLOCATOR: assert_no_alloc::AllocDisabler = assert_no_alloc::AllocDisabler;
+
+#[cfg(test)]
+mod tests {
+    use super::error_chain;
+    use crate::palette::PaletteError;
+
+    #[test]
+    fn error_chains_say_each_cause_once() {
+        // PaletteError::InFamily quotes its cause in its own text.
+        let inner = PaletteError::Invalid {
+            field: "atoms",
+            reason: "too many".into(),
+        };
+        let inner_text = inner.to_string();
+        let err = inner.in_family("kick");
+        let line = error_chain(&err);
+        assert_eq!(line.matches(&inner_text).count(), 1, "{line}");
+        assert!(line.starts_with("family 'kick'"), "{line}");
+        // A cause the message does not quote is appended.
+        #[derive(Debug)]
+        struct Reading(PaletteError);
+        impl std::fmt::Display for Reading {
+            fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+                f.write_str("reading the palette")
+            }
+        }
+        impl std::error::Error for Reading {
+            fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
+                Some(&self.0)
+            }
+        }
+        let outer = Reading(err);
+        assert_eq!(error_chain(&outer), format!("reading the palette: {line}"));
+    }
+}

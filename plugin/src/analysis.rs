@@ -216,16 +216,9 @@ fn load_palette(path: &str) -> Result<Palette, String> {
     })
 }
 
-/// An error and its sources, in one line.
+/// An error and its sources, in one line, each said once.
 fn chain(err: &dyn std::error::Error) -> String {
-    let mut text = err.to_string();
-    let mut source = err.source();
-    while let Some(s) = source {
-        text.push_str(": ");
-        text.push_str(&s.to_string());
-        source = s.source();
-    }
-    text
+    weft_engine::error_chain(err)
 }
 
 /// Loads a style model for `palette`'s windows, or says why not.
