@@ -9,7 +9,7 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use weft_engine::palette::{
     AnalysisSpec, BuildPlan, CheckPlan, DEFAULT_FAMILIES, DEFAULT_SECTIONS, Family, LearnSettings,
-    Palette, Provenance, build_palette, check_palette,
+    MAX_ATOMS_PER_FAMILY, Palette, PaletteError, Provenance, build_palette, check_palette,
 };
 use weft_engine::scene::{
     ClipBank, Composer, FamilyVoicing, Role, SoundFontRenderer, VoiceSource, general_midi_voicings,
@@ -296,6 +296,27 @@ fn plan_from(o: &BuildOptions) -> Result<BuildPlan> {
         unexplained_tolerance: o.tolerance,
         ..AnalysisSpec::DEFAULT
     };
+    if let Err(err) = analysis.check() {
+        let option = |field: &str| match field {
+            "analysis.bands" => "--bands",
+            "analysis.stack" => "--stack",
+            "analysis.column_s" => "--column-seconds",
+            "analysis.beta" => "--beta",
+            "analysis.iterations" => "--iterations",
+            "analysis.unexplained_tolerance" => "--tolerance",
+            _ => "an analysis option",
+        };
+        match err {
+            PaletteError::Invalid { field, reason } => bail!("{}: {reason}", option(field)),
+            other => return Err(other.into()),
+        }
+    }
+    if !(1..=MAX_ATOMS_PER_FAMILY).contains(&o.atoms) {
+        bail!(
+            "--atoms {}: a palette holds 1 to {MAX_ATOMS_PER_FAMILY} atoms per family",
+            o.atoms
+        );
+    }
     Ok(BuildPlan {
         sample_rate_hz: RENDER_RATE_HZ,
         analysis,
@@ -466,7 +487,11 @@ fn read_folders(folder: &Path) -> Result<(Vec<String>, ClipBank)> {
                     total_s += x.len() as f64 / f64::from(RENDER_RATE_HZ);
                     bank.add(f, x);
                 }
-                Err(e) => eprintln!("skipping {}: {e:#}", file.display()),
+                Err(e) => eprintln!(
+                    "skipping {}: {}",
+                    file.display(),
+                    weft_engine::error_chain(e.as_ref())
+                ),
             }
         }
         if total_s < 10.0 {

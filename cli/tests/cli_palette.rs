@@ -65,3 +65,26 @@ fn direct_share_network_options_are_refused_first_when_out_of_range() {
     assert!(!ok);
     assert!(err.contains("/nonexistent/folders"), "{err}");
 }
+
+#[test]
+fn analysis_settings_a_palette_cannot_hold_are_refused_first() {
+    // Limits of the palette format (weft_engine::palette::MAX_ATOMS_PER_FAMILY, MAX_STACK).
+    for (args, want) in [
+        (
+            ["--atoms", "65"],
+            "--atoms 65: a palette holds 1 to 64 atoms per family",
+        ),
+        (["--atoms", "0"], "--atoms 0: a palette holds 1 to 64"),
+        (["--stack", "12"], "--stack: value 12 is out of range"),
+        (["--bands", "4"], "--bands: value 4 is out of range"),
+        (["--tolerance", "1"], "--tolerance: value 1 is out of range"),
+    ] {
+        let (ok, err) = learn_nowhere(&args);
+        assert!(!ok);
+        assert!(err.contains(want), "{args:?}: {err}");
+        assert!(!err.contains("/nonexistent/folders"), "{args:?}: {err}");
+    }
+    let (ok, err) = learn_nowhere(&["--atoms", "64", "--stack", "9"]);
+    assert!(!ok);
+    assert!(err.contains("/nonexistent/folders"), "{err}");
+}

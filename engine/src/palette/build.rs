@@ -6,7 +6,9 @@
 //! Work is spread over `threads` threads (scoped, std only); results do not depend on the
 //! number of threads.
 
-use super::{AnalysisSpec, Family, LearnSettings, Palette, PaletteError, Provenance};
+use super::{
+    AnalysisSpec, Family, LearnSettings, MAX_ATOMS_PER_FAMILY, Palette, PaletteError, Provenance,
+};
 use super::{learn_family_atoms, stacked_columns};
 use crate::scene::{ClipBank, Composer, Mix, MixSpec, SceneError, SceneRng, SoundFontRenderer};
 use crate::shares::check::{CheckReport, MixRecord, column_residuals, evaluate_mix, presence_rows};
@@ -303,6 +305,23 @@ pub fn build_palette(
 ) -> Result<Palette, BuildError> {
     let nf = families.len();
     let spec = plan.analysis;
+    // Settings a palette cannot hold are refused before any rendering.
+    spec.check()?;
+    if plan.learn.atoms == 0 {
+        return Err(PaletteError::Invalid {
+            field: "atoms",
+            reason: "a family needs at least one atom".into(),
+        }
+        .into());
+    }
+    if plan.learn.atoms > MAX_ATOMS_PER_FAMILY {
+        return Err(PaletteError::Limit {
+            what: "atoms per family",
+            value: plan.learn.atoms as u64,
+            max: MAX_ATOMS_PER_FAMILY as u64,
+        }
+        .into());
+    }
     let dims = spec.dims();
     let sr = f64::from(plan.sample_rate_hz);
     progress(&format!("learning atoms of {nf} families"));

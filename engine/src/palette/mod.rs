@@ -120,7 +120,9 @@ impl AnalysisSpec {
         self.bands * self.stack
     }
 
-    fn check(&self) -> Result<(), PaletteError> {
+    /// Checks every setting against the palette's rules; `Err` names the first field out of
+    /// range.
+    pub fn check(&self) -> Result<(), PaletteError> {
         let bad = |field: &'static str, value: f64| {
             Err(PaletteError::Invalid {
                 field,
