@@ -17,8 +17,17 @@
 //!   *Digital Coding of Waveforms*, 1984), tonal versus noisy;
 //! - the mean and standard deviation over the context of each column's fine-resolution values
 //!   ([`super::fine`]: flatness and crest per half octave at FFT resolution, the cepstral
-//!   envelope and the cepstral peak), which the mel bands blur away. This last group is what
-//!   [`PRESENCE_SCHEMA`] adds to [`PRESENCE_SCHEMA_V1`].
+//!   envelope and the cepstral peak), which the mel bands blur away. This group is what
+//!   [`PRESENCE_SCHEMA_V2`] adds to [`PRESENCE_SCHEMA_V1`];
+//! - per family, how its part of the full-dictionary fit moves over the context (`3 F`
+//!   values, what [`PRESENCE_SCHEMA`] adds to [`PRESENCE_SCHEMA_V2`]): the standard deviation
+//!   over the columns of its share of each column; its share at the onsets (each column's
+//!   share weighted by the column's rise in energy over the one before, the half-wave
+//!   rectified difference of spectral flux, J. P. Bello et al., IEEE Trans. Speech and Audio
+//!   Processing 13(5), 2005); and the mean absolute change of log10 of its energy from one
+//!   column to the next. A struck or plucked family carries its share at the onsets and then
+//!   decays; a family that only absorbs energy leaked from another follows that other's
+//!   course instead.
 //!
 //! **Model**: one hidden layer (ReLU) shared by all families and one sigmoid output per family
 //! (a multi-layer perceptron, D. E. Rumelhart, G. E. Hinton and R. J. Williams, Nature 1986),
@@ -45,10 +54,16 @@ use ndarray::{Array2, ArrayView1, ArrayView2, ArrayViewMut2, Axis, Slice};
 use serde::{Deserialize, Serialize};
 
 /// The name of the feature schema below, which new presence models are trained on.
-pub const PRESENCE_SCHEMA: &str = "presence-v2";
-/// The earlier schema: the same features without the fine-resolution ones (a prefix of
+pub const PRESENCE_SCHEMA: &str = "presence-v3";
+/// The schema before it: the same features without the per-family movement ones (a prefix of
 /// [`PRESENCE_SCHEMA`]'s vector). Palettes trained on it still load and run.
+pub const PRESENCE_SCHEMA_V2: &str = "presence-v2";
+/// The first schema: [`PRESENCE_SCHEMA_V2`] without the fine-resolution features (a prefix of
+/// it). Palettes trained on it still load and run.
 pub const PRESENCE_SCHEMA_V1: &str = "presence-v1";
+/// Per-family movement values of [`PRESENCE_SCHEMA`] (standard deviation of the share, share
+/// at the onsets, mean absolute change of the log energy).
+pub const MOVEMENT_VALUES: usize = 3;
 /// Groups of bands for the spectral-shape and movement features.
 pub const COARSE_BANDS: usize = 32;
 /// The largest hidden layer a palette may carry.
@@ -57,7 +72,23 @@ pub const MAX_HIDDEN: usize = 512;
 /// Number of presence features for `families` families with `atoms` atoms in all
 /// ([`PRESENCE_SCHEMA`]).
 pub fn feature_count(families: usize, atoms: usize) -> usize {
+    feature_count_v2(families, atoms) + MOVEMENT_VALUES * families
+}
+
+/// Number of presence features of [`PRESENCE_SCHEMA_V2`].
+pub fn feature_count_v2(families: usize, atoms: usize) -> usize {
     feature_count_v1(families, atoms) + 2 * FINE_VALUES
+}
+
+/// Number of presence features of `schema` for `families` families with `atoms` atoms in all,
+/// or `None` for a schema this version does not know.
+pub fn schema_feature_count(schema: &str, families: usize, atoms: usize) -> Option<usize> {
+    match schema {
+        PRESENCE_SCHEMA => Some(feature_count(families, atoms)),
+        PRESENCE_SCHEMA_V2 => Some(feature_count_v2(families, atoms)),
+        PRESENCE_SCHEMA_V1 => Some(feature_count_v1(families, atoms)),
+        _ => None,
+    }
 }
 
 /// Number of presence features of [`PRESENCE_SCHEMA_V1`].
@@ -191,14 +222,11 @@ impl PresenceModel {
 
     /// Checks the shapes and values; `Err` names the first problem.
     pub fn check(&self, families: usize, atoms: usize) -> Result<(), String> {
-        let expected = match self.schema.as_str() {
-            PRESENCE_SCHEMA => feature_count(families, atoms),
-            PRESENCE_SCHEMA_V1 => feature_count_v1(families, atoms),
-            other => {
-                return Err(format!(
-                    "presence schema '{other}' is neither '{PRESENCE_SCHEMA}' nor '{PRESENCE_SCHEMA_V1}'"
-                ));
-            }
+        let Some(expected) = schema_feature_count(&self.schema, families, atoms) else {
+            return Err(format!(
+                "presence schema '{}' is none of '{PRESENCE_SCHEMA}', '{PRESENCE_SCHEMA_V2}' and '{PRESENCE_SCHEMA_V1}'",
+                self.schema
+            ));
         };
         if self.features != expected {
             return Err(format!(
@@ -285,7 +313,7 @@ impl PresenceModel {
 
     /// Probabilities that each family is present, into `out` (one per family), using
     /// `scratch` (at least `features + hidden` values). `x` is a [`PRESENCE_SCHEMA`] vector,
-    /// of which a [`PRESENCE_SCHEMA_V1`] model reads the prefix it knows. Does not allocate.
+    /// of which a model of an earlier schema reads the prefix it knows. Does not allocate.
     pub fn predict_into(&self, x: &[f32], scratch: &mut [f32], out: &mut [f32]) {
         let (z, rest) = scratch.split_at_mut(self.features);
         self.standardise(x, z);
@@ -1223,7 +1251,57 @@ impl PresenceContext {
             x[o + k] = m;
             x[o + FINE_VALUES + k] = (m2 / voiced - m * m).max(0.0).sqrt();
         }
+        let o = o + 2 * FINE_VALUES;
+        // Taken out and put back (no allocation) so `movement` can read the ring.
+        let mut x = std::mem::take(&mut self.features);
+        self.movement(&mut x[o..o + MOVEMENT_VALUES * f], total / n as f32);
+        self.features = x;
         &self.features
+    }
+
+    /// The per-family movement values (see the module docs) into `out` (`3 F` values: the
+    /// standard deviations, then the shares at the onsets, then the mean log changes);
+    /// `mean_energy` is the mean stacked energy of the columns, the scale of the floor that
+    /// keeps the logarithms finite (so no gain changes them).
+    fn movement(&self, out: &mut [f32], mean_energy: f32) {
+        let f = self.families;
+        let n = self.filled.max(1);
+        // The ring's columns oldest first.
+        let start = if self.filled < self.len { 0 } else { self.next };
+        let at = |j: usize| (start + j) % self.len;
+        let floor = 1e-3 * mean_energy + f32::MIN_POSITIVE;
+        let mut rise_total = 0.0_f32;
+        for j in 1..n {
+            rise_total += (self.col_energy[at(j)] - self.col_energy[at(j - 1)]).max(0.0);
+        }
+        for k in 0..f {
+            let (mut m, mut m2, mut onset, mut change) = (0.0_f32, 0.0_f32, 0.0_f32, 0.0_f32);
+            for j in 0..n {
+                let c = at(j);
+                let e = self.fam[c * f + k];
+                let s = if self.energy[c] > 0.0 {
+                    (e / self.energy[c]).clamp(0.0, 1.0)
+                } else {
+                    0.0
+                };
+                m += s;
+                m2 += s * s;
+                if j > 0 {
+                    let p = at(j - 1);
+                    onset += (self.col_energy[c] - self.col_energy[p]).max(0.0) * s;
+                    let before = self.fam[p * f + k];
+                    change += ((e + floor) / (before + floor)).log10().abs();
+                }
+            }
+            let mean = m / n as f32;
+            out[k] = (m2 / n as f32 - mean * mean).max(0.0).sqrt();
+            out[f + k] = if rise_total > 0.0 {
+                (onset / rise_total).clamp(0.0, 1.0)
+            } else {
+                mean
+            };
+            out[2 * f + k] = change / (n - 1).max(1) as f32;
+        }
     }
 }
 
@@ -1232,7 +1310,7 @@ mod tests {
     use super::*;
 
     #[test]
-    fn both_schemas_load_and_a_v1_model_reads_the_prefix_it_knows() {
+    fn all_schemas_load_and_an_older_model_reads_the_prefix_it_knows() {
         let (families, atoms) = (3, 12);
         let model = |schema: &str, features: usize| PresenceModel {
             schema: schema.to_owned(),
@@ -1257,35 +1335,103 @@ mod tests {
             shares: None,
         };
         let v1 = model(PRESENCE_SCHEMA_V1, feature_count_v1(families, atoms));
-        let v2 = model(PRESENCE_SCHEMA, feature_count(families, atoms));
-        assert_eq!(v1.check(families, atoms), Ok(()));
-        assert_eq!(v2.check(families, atoms), Ok(()));
-        let wrong = model(PRESENCE_SCHEMA_V1, feature_count(families, atoms));
-        let wrong = wrong.check(families, atoms);
-        assert!(
-            matches!(&wrong, Err(e) if e.contains("expected")),
-            "{wrong:?}"
-        );
+        let v2 = model(PRESENCE_SCHEMA_V2, feature_count_v2(families, atoms));
+        let v3 = model(PRESENCE_SCHEMA, feature_count(families, atoms));
+        for m in [&v1, &v2, &v3] {
+            assert_eq!(m.check(families, atoms), Ok(()), "{}", m.schema);
+        }
+        assert!(feature_count_v1(3, 12) < feature_count_v2(3, 12));
+        assert_eq!(feature_count(3, 12), feature_count_v2(3, 12) + 3 * 3);
+        for (schema, features) in [
+            (PRESENCE_SCHEMA_V1, feature_count(families, atoms)),
+            (PRESENCE_SCHEMA_V2, feature_count_v1(families, atoms)),
+            (PRESENCE_SCHEMA, feature_count_v2(families, atoms)),
+        ] {
+            let wrong = model(schema, features).check(families, atoms);
+            assert!(
+                matches!(&wrong, Err(e) if e.contains("expected")),
+                "{schema}: {wrong:?}"
+            );
+        }
         let unknown = model("presence-v0", feature_count_v1(families, atoms));
         let unknown = unknown.check(families, atoms);
         assert!(
             matches!(&unknown, Err(e) if e.contains("presence-v0")),
             "{unknown:?}"
         );
-        // A v1 model given a full (v2) vector reads only its prefix: the fine values at the end
+        // An older model given a full vector reads only its prefix: the values after it
         // change nothing.
-        let mut x = vec![0.0_f32; feature_count(families, atoms)];
-        x[..3].copy_from_slice(&[2.0, -2.0, 0.0]);
-        let mut scratch = vec![0.0; x.len()];
-        let mut a = [0.0_f32; 3];
-        v1.predict_into(&x, &mut scratch, &mut a);
-        x[feature_count_v1(families, atoms)..].fill(50.0);
-        let mut b = [0.0_f32; 3];
-        v1.predict_into(&x, &mut scratch, &mut b);
-        assert_eq!(a, b);
+        for (m, known) in [
+            (&v1, feature_count_v1(families, atoms)),
+            (&v2, feature_count_v2(families, atoms)),
+        ] {
+            let mut x = vec![0.0_f32; feature_count(families, atoms)];
+            x[..3].copy_from_slice(&[2.0, -2.0, 0.0]);
+            let mut scratch = vec![0.0; x.len()];
+            let mut a = [0.0_f32; 3];
+            m.predict_into(&x, &mut scratch, &mut a);
+            x[known..].fill(50.0);
+            let mut b = [0.0_f32; 3];
+            m.predict_into(&x, &mut scratch, &mut b);
+            assert_eq!(a, b, "{}", m.schema);
+            assert!(
+                a[0] > 0.85 && a[1] < 0.15 && (a[2] - 0.5).abs() < 1e-6,
+                "{a:?}"
+            );
+        }
+    }
+
+    /// Pushes columns whose family energies are `fam[c]` (two families, no residual) and
+    /// returns the movement values.
+    fn movement_of(fam: &[[f32; 2]], len: usize) -> Vec<f32> {
+        let (families, atoms) = (2, 2);
+        let mut ctx = PresenceContext::new(families, atoms, len);
+        for e in fam {
+            let total = e[0] + e[1];
+            ctx.push(&[total], total, e, e, 0.0, &[0.0; FINE_VALUES]);
+        }
+        let x = ctx.features();
+        x[feature_count_v2(families, atoms)..].to_vec()
+    }
+
+    #[test]
+    fn movement_values_tell_a_struck_family_from_a_steady_one() {
+        // Family 0 strikes twice and decays by half per column; family 1 holds steady.
+        let mut cols = Vec::new();
+        for _ in 0..2 {
+            for j in 0..6 {
+                cols.push([8.0 * 0.5_f32.powi(j), 1.0]);
+            }
+        }
+        let m = movement_of(&cols, 12);
+        let (sd, onset, change) = (&m[0..2], &m[2..4], &m[4..6]);
+        // The struck family's share moves, the steady one's moves as much the other way
+        // (two families), and the onsets carry the struck family.
+        assert!((sd[0] - sd[1]).abs() < 1e-5 && sd[0] > 0.2, "{sd:?}");
+        assert!(onset[0] > 0.85 && onset[1] < 0.15, "{onset:?}");
+        // Its energy changes by log10(2) per column in the decays and rises 5 times that at
+        // the second strike: (10 · 0.301 + 1.505) / 11.
+        let expect = (10.0 * 2f32.log10() + 5.0 * 2f32.log10()) / 11.0;
+        assert!((change[0] - expect).abs() < 0.01, "{change:?} vs {expect}");
+        assert!(change[1] < 1e-6, "{change:?}");
+        // A gain change of the whole input changes nothing.
+        let loud: Vec<[f32; 2]> = cols.iter().map(|c| [c[0] * 100.0, c[1] * 100.0]).collect();
+        let m_loud = movement_of(&loud, 12);
+        for (a, b) in m.iter().zip(&m_loud) {
+            assert!((a - b).abs() < 1e-4, "{m:?} vs {m_loud:?}");
+        }
+        // The ring keeps the columns in time order once it wraps: a ring of 5 that saw all 12
+        // columns holds the last 5 (starting mid-ring), as a fresh ring fed only those does.
+        let wrapped = movement_of(&cols, 5);
+        let fresh = movement_of(&cols[7..], 5);
+        for (a, b) in wrapped.iter().zip(&fresh) {
+            assert!((a - b).abs() < 1e-6, "{wrapped:?} vs {fresh:?}");
+        }
+        // No rise in energy at all: the onset share falls back to the mean share.
+        let flat = movement_of(&[[1.0, 3.0]; 5], 5);
         assert!(
-            a[0] > 0.85 && a[1] < 0.15 && (a[2] - 0.5).abs() < 1e-6,
-            "{a:?}"
+            (flat[2] - 0.25).abs() < 1e-6 && (flat[3] - 0.75).abs() < 1e-6,
+            "{flat:?}"
         );
     }
 
