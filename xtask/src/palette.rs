@@ -40,7 +40,11 @@ pub const SEED: &str = "1";
 /// once more (192 000; 37 min on 2 cores, 13.8 GB of memory at most) cost less time than 96 000
 /// had, and brought seeds 1–6 to 24.5 % (per section 21.6 %, F1 0.74). Twice the hidden units
 /// on that data (four networks of 128 for presence, 512 for shares; 47 min) brought them to
-/// 23.8 % (per section 20.9 %, F1 0.74; every seed improved).
+/// 23.8 % (per section 20.9 %, F1 0.74; every seed improved). The per-family movement features
+/// (schema presence-v3: each family's share spread, share at the onsets and log-energy change
+/// over the context) gave 27.9 → 27.3 % over seeds 1–6 in a build of 24 000 mixes (per section
+/// 24.5 → 24.0 %), and on this training 23.5 → 23.2 % over seeds 1–12 (per section 20.6 →
+/// 20.4 %, F1 0.745 → 0.750; 9 of 12 seeds better; 51 min).
 /// `weft palette learn` keeps the lighter defaults, which a user's own folders can afford.
 const PRESENCE_TRAINING: [&str; 18] = [
     "--mixes",
