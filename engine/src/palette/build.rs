@@ -12,10 +12,10 @@ use super::{
 use super::{learn_family_atoms, stacked_columns};
 use crate::scene::{ClipBank, Composer, Mix, MixSpec, SceneError, SceneRng, SoundFontRenderer};
 use crate::shares::check::{CheckReport, MixRecord, column_residuals, evaluate_mix, presence_rows};
-use crate::shares::presence::feature_count;
-use crate::shares::{
-    PresenceTraining, SharesError, SharesMode, train_presence, train_share_network,
+use crate::shares::presence::{
+    feature_count, train_presence_reporting, train_share_network_reporting,
 };
+use crate::shares::{PresenceTraining, SharesError, SharesMode};
 use thiserror::Error;
 
 /// Why a palette could not be built or checked.
@@ -160,6 +160,18 @@ fn weighted_quantile(pairs: &mut [(f64, f64)], q: f64) -> f64 {
 /// Seed streams, so training and checking mixes never coincide whatever seeds are given.
 const TRAIN_STREAM: u64 = 0x7261_696E;
 const CHECK_STREAM: u64 = 0x6368_6563;
+
+/// Tells `progress` "`what`: `done` of `total` (p %)" when `done` reaches each tenth of `total`
+/// (every step of a step of fewer than ten), so long steps show how far they are without
+/// flooding the output.
+fn tell_tenths(progress: &(dyn Fn(&str) + Sync), what: &str, done: usize, total: usize) {
+    if done >= 1 && (total < 10 || done * 10 / total != (done - 1) * 10 / total) {
+        progress(&format!(
+            "  {what}: {done} of {total} ({} %)",
+            done * 100 / total
+        ));
+    }
+}
 
 /// Runs `job(i)` for `i in 0..n` on `threads` threads (each takes the next index when it is
 /// free), results in order.
@@ -382,6 +394,7 @@ pub fn build_palette(
             plan.sample_rate_hz,
         )
     };
+    let rendered = std::sync::atomic::AtomicUsize::new(0);
     let rows = parallel(
         plan.training_mixes,
         plan.threads,
@@ -391,6 +404,13 @@ pub fn build_palette(
             let mut labels = Vec::new();
             let mut shares = Vec::new();
             presence_rows(&palette, &mix, &mut rows, &mut labels, &mut shares)?;
+            let done = rendered.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
+            tell_tenths(
+                progress,
+                "training mixes rendered",
+                done,
+                plan.training_mixes,
+            );
             Ok((rows, labels, shares))
         },
     );
@@ -414,13 +434,17 @@ pub fn build_palette(
     let mut training = plan.presence;
     training.seed = SceneRng::derive(plan.seed, 77).next_u64();
     training.threads = plan.threads;
-    let mut model = train_presence(&x, features, &y, nf, &training);
+    let epochs = |done, total| tell_tenths(progress, "presence epochs", done, total);
+    let mut model = train_presence_reporting(&x, features, &y, nf, &training, &epochs);
     if training.shares.hidden > 0 {
         progress(&format!(
             "training the direct share network ({} hidden units)",
             training.shares.hidden
         ));
-        if let Some((net, tv_pct)) = train_share_network(&x, &truth, &model, &training) {
+        let epochs = |done, total| tell_tenths(progress, "share network epochs", done, total);
+        if let Some((net, tv_pct)) =
+            train_share_network_reporting(&x, &truth, &model, &training, &epochs)
+        {
             progress(&format!(
                 "direct share network: {tv_pct:.1} % of the energy misattributed on held-back training mixes"
             ));
@@ -488,4 +512,32 @@ pub fn check_palette(
     );
     let records: Result<Vec<MixRecord>, BuildError> = records.into_iter().collect();
     Ok(CheckReport::new(palette, &records?))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::tell_tenths;
+    use std::sync::Mutex;
+
+    /// The lines `tell_tenths` writes over a step of `total`.
+    fn told(total: usize) -> Vec<String> {
+        let lines = Mutex::new(Vec::new());
+        let progress = |s: &str| lines.lock().expect("not poisoned").push(s.to_owned());
+        for done in 1..=total {
+            tell_tenths(&progress, "mixes", done, total);
+        }
+        lines.into_inner().expect("not poisoned")
+    }
+
+    #[test]
+    fn long_steps_are_told_once_per_tenth() {
+        let lines = told(25);
+        assert_eq!(lines.len(), 10, "{lines:?}");
+        assert_eq!(lines[0], "  mixes: 3 of 25 (12 %)");
+        assert_eq!(lines[9], "  mixes: 25 of 25 (100 %)");
+        // A step of fewer than ten is told at every step.
+        let lines = told(4);
+        assert_eq!(lines.len(), 4, "{lines:?}");
+        assert_eq!(lines[1], "  mixes: 2 of 4 (50 %)");
+    }
 }

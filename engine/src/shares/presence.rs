@@ -522,6 +522,19 @@ pub fn train_presence(
     families: usize,
     opts: &PresenceTraining,
 ) -> PresenceModel {
+    train_presence_reporting(rows, features, labels, families, opts, &|_, _| {})
+}
+
+/// [`train_presence`], telling `report(done, total)` after each epoch of each member how many
+/// epochs of all members are done (from the thread that fitted it; the result is the same).
+pub fn train_presence_reporting(
+    rows: &[f32],
+    features: usize,
+    labels: &[bool],
+    families: usize,
+    opts: &PresenceTraining,
+    report: &(dyn Fn(usize, usize) + Sync),
+) -> PresenceModel {
     let n = rows.len().checked_div(features).unwrap_or(0);
     let (mean, scale) = standardisation(rows, features, n);
     let z = standardised(rows, &mean, &scale);
@@ -569,6 +582,7 @@ pub fn train_presence(
     };
     // A logistic regression is convex: members would all reach the same weights.
     let members = if hidden == 0 { 1 } else { members };
+    let epochs = EpochCount::new(members * opts.epochs, report);
     let threads = opts.threads.clamp(1, members);
     let mut fitted: Vec<Option<Params>> = vec![None; members];
     std::thread::scope(|scope| {
@@ -577,11 +591,12 @@ pub fn train_presence(
         let mut first = 0;
         for chunk in chunks {
             let data = &data;
+            let epochs = &epochs;
             let start = first;
             first += chunk.len();
             scope.spawn(move || {
                 for (j, slot) in chunk.iter_mut().enumerate() {
-                    *slot = Some(fit_member(data, &schedule, start + j));
+                    *slot = Some(fit_member(data, &schedule, start + j, epochs));
                 }
             });
         }
@@ -666,6 +681,17 @@ pub fn train_share_network(
     model: &PresenceModel,
     opts: &PresenceTraining,
 ) -> Option<(ShareNetwork, f64)> {
+    train_share_network_reporting(rows, shares, model, opts, &|_, _| {})
+}
+
+/// [`train_share_network`], telling `report(done, total)` after each epoch how many are done.
+pub fn train_share_network_reporting(
+    rows: &[f32],
+    shares: &[f32],
+    model: &PresenceModel,
+    opts: &PresenceTraining,
+    report: &(dyn Fn(usize, usize) + Sync),
+) -> Option<(ShareNetwork, f64)> {
     let t = opts.shares;
     let features = model.features;
     let families = model.families();
@@ -694,7 +720,7 @@ pub fn train_share_network(
         seed: opts.seed,
         stream: SHARE_STREAM,
     };
-    let p = fit_member(&data, &schedule, 0);
+    let p = fit_member(&data, &schedule, 0, &EpochCount::new(t.epochs, report));
     let mut hbuf = vec![0.0_f32; hidden];
     let mut out = vec![0.0_f32; families];
     let mut tv = 0.0;
@@ -829,10 +855,32 @@ struct Schedule {
     stream: u64,
 }
 
+/// Epochs done over all members of a fit, told to a caller's report after each one.
+struct EpochCount<'a> {
+    done: std::sync::atomic::AtomicUsize,
+    total: usize,
+    report: &'a (dyn Fn(usize, usize) + Sync),
+}
+
+impl<'a> EpochCount<'a> {
+    fn new(total: usize, report: &'a (dyn Fn(usize, usize) + Sync)) -> Self {
+        Self {
+            done: std::sync::atomic::AtomicUsize::new(0),
+            total,
+            report,
+        }
+    }
+
+    fn epoch_done(&self) {
+        let done = self.done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
+        (self.report)(done, self.total);
+    }
+}
+
 /// Fits member `member` of a network: its own initial weights and shuffles, drawn from
 /// `schedule.seed` (member 0 of a presence model from the stream a single network has always
-/// used).
-fn fit_member(data: &FitData, schedule: &Schedule, member: usize) -> Params {
+/// used). Tells `epochs` after each epoch.
+fn fit_member(data: &FitData, schedule: &Schedule, member: usize, epochs: &EpochCount) -> Params {
     let FitData {
         features,
         families,
@@ -875,6 +923,7 @@ fn fit_member(data: &FitData, schedule: &Schedule, member: usize) -> Params {
             grads.scale_add_l2(inv, schedule.l2, &params);
             adam.step(&mut params, &grads, lr);
         }
+        epochs.epoch_done();
     }
     params
 }
@@ -1782,5 +1831,47 @@ mod tests {
             correct as f64 / n as f64 > 0.9,
             "seed 7/3: {correct} of {n}"
         );
+    }
+
+    #[test]
+    fn training_reports_every_epoch_of_every_member_and_changes_nothing() {
+        use std::sync::Mutex;
+        let n = 600;
+        let (rows, labels) = xor_rows(11, n);
+        let mut opts = PresenceTraining {
+            hidden: 4,
+            epochs: 5,
+            batch: 32,
+            learning_rate: 1e-2,
+            l2: 0.0,
+            seed: 5,
+            threshold_beta: 1.0,
+            members: 3,
+            threads: 2,
+            shares: ShareTraining::default(),
+        };
+        let told = Mutex::new(Vec::new());
+        let report =
+            |done: usize, total: usize| told.lock().expect("not poisoned").push((done, total));
+        let reported = train_presence_reporting(&rows, 2, &labels, 2, &opts, &report);
+        assert_eq!(reported, train_presence(&rows, 2, &labels, 2, &opts));
+        let mut got = std::mem::take(&mut *told.lock().expect("not poisoned"));
+        got.sort_unstable();
+        let want: Vec<(usize, usize)> = (1..=15).map(|d| (d, 15)).collect();
+        assert_eq!(got, want, "3 members × 5 epochs, each told once");
+        // The share network: one fit, its own epochs.
+        opts.shares = ShareTraining {
+            hidden: 4,
+            epochs: 3,
+            ..ShareTraining::default()
+        };
+        let shares: Vec<f32> = labels
+            .chunks(2)
+            .flat_map(|l| if l[0] { [0.8, 0.2] } else { [0.3, 0.7] })
+            .collect();
+        let net = train_share_network_reporting(&rows, &shares, &reported, &opts, &report);
+        assert_eq!(net, train_share_network(&rows, &shares, &reported, &opts));
+        let got = std::mem::take(&mut *told.lock().expect("not poisoned"));
+        assert_eq!(got, vec![(1, 3), (2, 3), (3, 3)]);
     }
 }
