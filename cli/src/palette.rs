@@ -777,9 +777,42 @@ fn print_level(title: &str, l: &weft_engine::shares::check::LevelScore) {
         l.nmf_f1
     );
     println!(
-        "energy misattributed: {:.1} % (NMF alone {:.1} %, uniform {:.1} %)\n",
+        "energy misattributed: {:.1} % (NMF alone {:.1} %, uniform {:.1} %)",
         l.tv_pct, l.nmf_tv_pct, l.uniform_tv_pct
     );
+    let b = weft_engine::shares::check::BORDERLINE_FACTOR;
+    let mark = 100.0 * weft_engine::shares::check::PRESENT_SHARE;
+    println!(
+        "presence mistakes: {} ({:.0} % of them borderline: truly between {:.1} and {:.0} %)\n",
+        l.mistakes,
+        l.borderline_pct,
+        mark / b,
+        mark * b
+    );
+}
+
+/// The figures by how many families sound at once.
+fn print_density(r: &CheckReport) {
+    if r.by_density.is_empty() {
+        return;
+    }
+    println!("by how many families truly sound in the window");
+    println!(
+        "{:<24} {:>7} {:>7} {:>9} {:>5} {:>7}",
+        "families sounding", "windows", "TV %", "section %", "F1", "NMF %"
+    );
+    for d in &r.by_density {
+        let label = if d.families_present == weft_engine::shares::check::MAX_DENSITY {
+            format!("{} or more", d.families_present)
+        } else {
+            d.families_present.to_string()
+        };
+        println!(
+            "{:<24} {:>7} {:>7.1} {:>9.1} {:>5.2} {:>7.1}",
+            label, d.windows, d.tv_pct, d.section_tv_pct, d.f1, d.nmf_tv_pct
+        );
+    }
+    println!();
 }
 
 /// Where each family's energy goes when it plays alone.
@@ -819,6 +852,7 @@ fn print_report(r: &CheckReport) {
     print_level("family", &r.family);
     print_level("section", &r.section);
     print_alone(r);
+    print_density(r);
     println!("mean unexplained share: {:.3}", r.unexplained_mean);
     println!(
         "realtime factor: {:.0}x (both stages and the NMF-alone baseline, one thread: {:.2} % of one core)",

@@ -94,4 +94,20 @@ fn small_fixed_seed_check_meets_the_measured_bounds() {
         assert!(a.kept_pct + taken <= 100.0 + 1e-4, "{a:?}");
         assert!(j["alone"][a.name.as_str()]["kept_pct"].is_number(), "{j}");
     }
+    // The groups by how many families sound split the windows: their counts add up, and their
+    // window-weighted energy misattributed is the whole check's.
+    let windows: usize = r.by_density.iter().map(|d| d.windows).sum();
+    assert_eq!(windows, r.windows, "{j}");
+    let weighted: f64 = r
+        .by_density
+        .iter()
+        .map(|d| d.tv_pct * d.windows as f64)
+        .sum::<f64>()
+        / r.windows as f64;
+    assert!((weighted - r.family.tv_pct).abs() < 1e-6, "{j}");
+    assert_eq!(
+        j["by_density"].as_array().map(Vec::len),
+        Some(r.by_density.len())
+    );
+    assert!((0.0..=100.0).contains(&r.family.borderline_pct), "{j}");
 }

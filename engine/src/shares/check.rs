@@ -30,6 +30,12 @@ pub const ALONE_SHARE: f64 = 0.9;
 const ALONE_TAKERS: usize = 3;
 /// …each with at least this mean share.
 const ALONE_TAKER_MIN: f64 = 0.01;
+/// A presence mistake is *borderline* when the true share lies within a factor of this of
+/// [`PRESENT_SHARE`] (2.5–10 %): a small error of the amount moves it across the mark.
+pub const BORDERLINE_FACTOR: f64 = 2.0;
+/// Windows are grouped by how many families truly sound in them, from 1 to this many (the
+/// last group holds this many or more).
+pub const MAX_DENSITY: usize = 5;
 /// Windows whose mix is quieter than this (dBFS RMS) are not scored.
 pub const QUIET_WINDOW_DB: f64 = -60.0;
 
@@ -287,8 +293,30 @@ pub struct LevelScore {
     pub nmf_present_mae_pp: f64,
     /// NMF alone: presence F1.
     pub nmf_f1: f64,
+    /// Presence mistakes (false or missed), pooled.
+    pub mistakes: usize,
+    /// Of those, the share that is *borderline* ([`BORDERLINE_FACTOR`]), %.
+    pub borderline_pct: f64,
     /// Per group.
     pub groups: Vec<GroupScore>,
+}
+
+/// Figures over the windows in which the same number of families truly sound (≥
+/// [`PRESENT_SHARE`] each): how the estimate holds up as the arrangement thickens.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct DensityScore {
+    /// Families truly present in these windows ([`MAX_DENSITY`]: that many or more).
+    pub families_present: usize,
+    /// Windows scored.
+    pub windows: usize,
+    /// Energy misattributed per family, %.
+    pub tv_pct: f64,
+    /// Energy misattributed per section, %.
+    pub section_tv_pct: f64,
+    /// Presence F1 of the families.
+    pub f1: f64,
+    /// NMF alone: energy misattributed per family, %.
+    pub nmf_tv_pct: f64,
 }
 
 /// Where one family's energy goes when it plays alone: the mean estimate over the windows
@@ -326,6 +354,8 @@ pub struct CheckReport {
     /// Where each family's energy goes when it plays alone (families that never do are left
     /// out).
     pub alone: Vec<AloneScore>,
+    /// By how many families truly sound in a window (groups with no windows are left out).
+    pub by_density: Vec<DensityScore>,
     /// Mean estimated *unexplained* share.
     pub unexplained_mean: f64,
     /// Seconds of audio per second of analysis (both stages and the NMF-alone baseline, one
@@ -399,6 +429,11 @@ fn level(records: &[&WindowRecord], names: &[String], group_of: &[usize]) -> Lev
     let mut nmf_mae = (0.0, 0usize);
     let mut counts = Counts::default();
     let mut nmf_counts = Counts::default();
+    let mut borderline = 0usize;
+    let (low, high) = (
+        PRESENT_SHARE / BORDERLINE_FACTOR,
+        PRESENT_SHARE * BORDERLINE_FACTOR,
+    );
     let mut per: Vec<(f64, f64, f64, usize, Counts, Counts)> =
         vec![(0.0, 0.0, 0.0, 0, Counts::default(), Counts::default()); g];
     for r in records {
@@ -412,6 +447,9 @@ fn level(records: &[&WindowRecord], names: &[String], group_of: &[usize]) -> Lev
         for k in 0..g {
             let present = truth[k] >= PRESENT_SHARE;
             counts.add(est[k] >= PRESENT_SHARE, present);
+            if (est[k] >= PRESENT_SHARE) != present && (low..high).contains(&truth[k]) {
+                borderline += 1;
+            }
             nmf_counts.add(nmf[k] >= PRESENT_SHARE, present);
             per[k].4.add(est[k] >= PRESENT_SHARE, present);
             per[k].5.add(nmf[k] >= PRESENT_SHARE, present);
@@ -460,6 +498,8 @@ fn level(records: &[&WindowRecord], names: &[String], group_of: &[usize]) -> Lev
         nmf_tv_pct: 100.0 * sum_n / n,
         nmf_present_mae_pp: 100.0 * nmf_mae.0 / nmf_mae.1.max(1) as f64,
         nmf_f1: nmf_counts.prf().2,
+        mistakes: counts.fp + counts.fneg,
+        borderline_pct: 100.0 * borderline as f64 / (counts.fp + counts.fneg).max(1) as f64,
         groups,
     }
 }
@@ -500,6 +540,41 @@ fn alone_scores(records: &[&WindowRecord], names: &[String]) -> Vec<AloneScore> 
     out
 }
 
+/// The figures per number of families truly present ([`DensityScore`]).
+fn density_scores(
+    records: &[&WindowRecord],
+    fam_names: &[String],
+    sections: &[String],
+    section_of: &[usize],
+) -> Vec<DensityScore> {
+    let identity: Vec<usize> = (0..fam_names.len()).collect();
+    (1..=MAX_DENSITY)
+        .filter_map(|d| {
+            let these: Vec<&WindowRecord> = records
+                .iter()
+                .copied()
+                .filter(|r| {
+                    let n = r.truth.iter().filter(|&&t| t >= PRESENT_SHARE).count();
+                    n.clamp(1, MAX_DENSITY) == d
+                })
+                .collect();
+            if these.is_empty() {
+                return None;
+            }
+            let fam = level(&these, fam_names, &identity);
+            let sec = level(&these, sections, section_of);
+            Some(DensityScore {
+                families_present: d,
+                windows: these.len(),
+                tv_pct: fam.tv_pct,
+                section_tv_pct: sec.tv_pct,
+                f1: fam.f1,
+                nmf_tv_pct: fam.nmf_tv_pct,
+            })
+        })
+        .collect()
+}
+
 impl CheckReport {
     /// Scores the records of every mix against `palette`'s families and sections.
     pub fn new(palette: &Palette, mixes: &[MixRecord]) -> Self {
@@ -515,6 +590,7 @@ impl CheckReport {
             family: level(&records, &fam_names, &identity),
             section: level(&records, palette.sections(), &section_of),
             alone: alone_scores(&records, &fam_names),
+            by_density: density_scores(&records, &fam_names, palette.sections(), &section_of),
             unexplained_mean: records.iter().map(|r| r.est_unexplained).sum::<f64>()
                 / records.len().max(1) as f64,
             realtime_factor: if time > 0.0 { audio / time } else { 0.0 },
@@ -566,6 +642,16 @@ impl CheckReport {
             "realtime_factor": self.realtime_factor,
             "per_family": groups(&self.family),
             "per_section": groups(&self.section),
+            "presence_mistakes": self.family.mistakes,
+            "presence_borderline_pct": self.family.borderline_pct,
+            "by_density": self.by_density.iter().map(|d| serde_json::json!({
+                "families_present": d.families_present,
+                "windows": d.windows,
+                "tv_pct": d.tv_pct,
+                "section_tv_pct": d.section_tv_pct,
+                "f1": d.f1,
+                "nmf_tv_pct": d.nmf_tv_pct,
+            })).collect::<Vec<_>>(),
             "alone": self.alone.iter().map(|s| (s.name.clone(), serde_json::json!({
                 "windows": s.windows,
                 "truth_pct": s.truth_pct,
@@ -619,5 +705,64 @@ mod tests {
         let c = &s[1];
         assert_eq!((c.name.as_str(), c.windows), ("c", 1));
         assert!(c.taken_by.is_empty(), "0.5 % is below the 1 % floor");
+    }
+
+    /// A window whose NMF-alone estimate is the truth itself.
+    fn record(truth: [f64; 6], est: [f64; 6]) -> WindowRecord {
+        WindowRecord {
+            truth: truth.to_vec(),
+            est: est.to_vec(),
+            est_unexplained: 0.0,
+            nmf: truth.to_vec(),
+            nmf_unexplained: 0.0,
+        }
+    }
+
+    #[test]
+    fn windows_are_grouped_by_how_many_families_sound_and_borderline_mistakes_are_told() {
+        let names: Vec<String> = (0..6).map(|i| format!("f{i}")).collect();
+        let sections: Vec<String> = ["low", "high"].iter().map(|s| s.to_string()).collect();
+        let section_of = [0, 0, 0, 1, 1, 1];
+        let sixth = 1.0 / 6.0;
+        let w = [
+            // One family, exact.
+            record(
+                [1.0, 0.0, 0.0, 0.0, 0.0, 0.0],
+                [1.0, 0.0, 0.0, 0.0, 0.0, 0.0],
+            ),
+            // One family, a fifth given to f1 (same section): a false presence far from the mark.
+            record(
+                [1.0, 0.0, 0.0, 0.0, 0.0, 0.0],
+                [0.8, 0.2, 0.0, 0.0, 0.0, 0.0],
+            ),
+            // Two families; f3 truly holds 4 % (absent) and is given 6 %: borderline.
+            record(
+                [0.48, 0.48, 0.0, 0.04, 0.0, 0.0],
+                [0.46, 0.48, 0.0, 0.06, 0.0, 0.0],
+            ),
+            // Six families: counted with five.
+            record([sixth; 6], [sixth; 6]),
+        ];
+        let records: Vec<&WindowRecord> = w.iter().collect();
+        let d = density_scores(&records, &names, &sections, &section_of);
+        let got: Vec<(usize, usize)> = d.iter().map(|d| (d.families_present, d.windows)).collect();
+        assert_eq!(
+            got,
+            [(1, 2), (2, 1), (MAX_DENSITY, 1)],
+            "empty groups left out"
+        );
+        let close = |x: f64, y: f64| (x - y).abs() < 1e-9;
+        // Family level: (0 + 20) / 2 %; the section level does not see f0 → f1.
+        assert!(close(d[0].tv_pct, 10.0) && close(d[0].section_tv_pct, 0.0));
+        // TP 2, FP 1: F1 = 4 / 5.
+        assert!(close(d[0].f1, 0.8), "{}", d[0].f1);
+        // 0.5 · (0.02 + 0.02) at both levels.
+        assert!(close(d[1].tv_pct, 2.0) && close(d[1].section_tv_pct, 2.0));
+        assert!(close(d[2].tv_pct, 0.0) && close(d[2].f1, 1.0));
+        assert!(d.iter().all(|d| close(d.nmf_tv_pct, 0.0)));
+        let identity: Vec<usize> = (0..6).collect();
+        let fam = level(&records, &names, &identity);
+        assert_eq!(fam.mistakes, 2);
+        assert!(close(fam.borderline_pct, 50.0), "{}", fam.borderline_pct);
     }
 }
