@@ -14,6 +14,7 @@
 #![forbid(unsafe_code)]
 
 mod analyze;
+mod check_plot;
 mod compare;
 mod decode;
 mod demo;

@@ -198,6 +198,9 @@ pub struct CheckArgs {
     /// Print one JSON object instead of tables.
     #[arg(long)]
     pub json: bool,
+    /// Also draw the figures per family and by how many families sound (.svg or .png).
+    #[arg(long, value_name = "FILE")]
+    pub plot: Option<PathBuf>,
     /// Worker threads (default: all cores; the realtime factor is per thread).
     #[arg(long)]
     pub threads: Option<usize>,
@@ -255,7 +258,26 @@ pub fn run(args: PaletteArgs) -> Result<()> {
         PaletteCommand::Learn(a) => learn(&a),
         PaletteCommand::Render(a) => render(&a),
         PaletteCommand::Check(a) => {
+            if let Some(p) = &a.plot
+                && crate::plot::PlotFormat::from_path(p).is_none()
+            {
+                bail!("--plot {}: a plot must end in .svg or .png", p.display());
+            }
             let report = check(&a)?;
+            if let Some(p) = &a.plot {
+                let title = match &a.palette {
+                    Some(f) => f
+                        .file_name()
+                        .map_or_else(|| f.display().to_string(), |n| n.to_string_lossy().into()),
+                    None => "built-in palette".to_owned(),
+                };
+                crate::check_plot::write_check_plot(
+                    p,
+                    &report,
+                    &format!("{title}, seed {}", a.seed),
+                )?;
+                eprintln!("plot written to {}", p.display());
+            }
             if a.json {
                 let mut v = report.to_json();
                 if let Some(o) = v.as_object_mut() {

@@ -59,6 +59,10 @@ const TOL_MUTED: [RGBColor; 9] = [
 ];
 /// The scheme's pale grey (Tol's colour for "bad data"): the unexplained share.
 const UNEXPLAINED_COLOUR: RGBColor = RGBColor(0xDD, 0xDD, 0xDD);
+/// Bars of Weft's own figures in check plots (Tol's muted indigo).
+pub const PRODUCT_COLOUR: RGBColor = TOL_MUTED[1];
+/// Bars of a baseline in check plots (a grey darker than the unexplained share's).
+pub const BASELINE_COLOUR: RGBColor = RGBColor(0xBB, 0xBB, 0xBB);
 /// The closeness line.
 const CLOSENESS_COLOUR: RGBColor = RGBColor(0, 0, 0);
 

@@ -1,7 +1,7 @@
-//! `weft palette` options that are refused before any work starts.
+//! `weft palette` options that are refused before any work starts, and the check's plot.
 
 mod common;
-use common::{text, weft};
+use common::{path_str, text, weft};
 
 /// Runs `weft palette learn` on a folder that does not exist with `extra` options; returns
 /// whether it succeeded and its error output.
@@ -87,4 +87,66 @@ fn analysis_settings_a_palette_cannot_hold_are_refused_first() {
     let (ok, err) = learn_nowhere(&["--atoms", "64", "--stack", "9"]);
     assert!(!ok);
     assert!(err.contains("/nonexistent/folders"), "{err}");
+}
+
+#[test]
+fn a_check_plot_of_another_format_is_refused_first() {
+    let dir = tempfile::tempdir().expect("temp dir");
+    let out = dir.path().join("figures.txt");
+    // A palette that does not exist: the plot's name must be refused before it is read.
+    let o = weft(&[
+        "palette",
+        "check",
+        "--palette",
+        "/nonexistent/p.weftpal",
+        "--plot",
+        path_str(&out),
+    ]);
+    let err = text(&o.stderr);
+    assert!(!o.status.success());
+    assert!(
+        err.contains("--plot") && err.contains(".svg or .png"),
+        "{err}"
+    );
+    assert!(!out.exists());
+}
+
+#[test]
+fn a_check_draws_its_figures_per_family_and_by_how_many_families_sound() {
+    // Held-out mixes from the General MIDI SoundFont (FluidR3_GM, Debian fluid-soundfont-gm).
+    let dir = tempfile::tempdir().expect("temp dir");
+    let out = dir.path().join("figures.svg");
+    let o = weft(&[
+        "palette",
+        "check",
+        "--mixes",
+        "3",
+        "--mix-seconds",
+        "3",
+        "--seed",
+        "5",
+        "--plot",
+        path_str(&out),
+    ]);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    let stdout = text(&o.stdout);
+    assert!(
+        stdout.contains("by how many families truly sound"),
+        "{stdout}"
+    );
+    assert!(stdout.contains("presence mistakes:"), "{stdout}");
+    let svg = std::fs::read_to_string(&out).expect("the plot is written");
+    for label in [
+        "presence F1 per family",
+        "share error where the family sounds",
+        "by how many families sound",
+        "two stages",
+        "NMF alone",
+        "built-in palette, seed 5",
+        // The built-in palette's first and last families.
+        "kick",
+        "mallets",
+    ] {
+        assert!(svg.contains(label), "{label} missing from the plot");
+    }
 }
