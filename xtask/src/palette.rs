@@ -44,7 +44,10 @@ pub const SEED: &str = "1";
 /// (schema presence-v3: each family's share spread, share at the onsets and log-energy change
 /// over the context) gave 27.9 → 27.3 % over seeds 1–6 in a build of 24 000 mixes (per section
 /// 24.5 → 24.0 %), and on this training 23.5 → 23.2 % over seeds 1–12 (per section 20.6 →
-/// 20.4 %, F1 0.745 → 0.750; 9 of 12 seeds better; 51 min).
+/// 20.4 %, F1 0.745 → 0.750; 9 of 12 seeds better; 51 min). The mixes' length was checked
+/// again on that schema, in builds of the same audio (24 000 × 1.5 s, 2 × 128 presence units, a
+/// 256-unit share network): 12 000 × 3 s gave 28.2 % and 36 000 × 1 s 28.0 %, against 27.3 %
+/// (mean of seeds 1–6), so the mixes stay 1.5 s long.
 /// `weft palette learn` keeps the lighter defaults, which a user's own folders can afford.
 const PRESENCE_TRAINING: [&str; 18] = [
     "--mixes",
