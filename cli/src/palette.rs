@@ -57,7 +57,8 @@ pub enum ModeArg {
     TwoStage,
     /// NMF alone (the baseline, also reported by two-stage).
     Nmf,
-    /// Amount over the truly present families (the ceiling of the amount stage).
+    /// Amount over the truly present families, with the share network's blend (the ceiling
+    /// of the amount stage).
     KnownPresence,
 }
 

@@ -82,8 +82,9 @@ pub enum SharesMode {
     TwoStage,
     /// The whole dictionary, no presence stage (a baseline).
     NmfAlone,
-    /// Amount over the families set with [`SharesEstimator::set_known_presence`] (for
-    /// measuring the ceiling of the amount stage against ground truth).
+    /// Amount over the families set with [`SharesEstimator::set_known_presence`], weighed by
+    /// the palette's direct share network as in [`SharesMode::TwoStage`] (which admits no
+    /// family here): the ceiling of the amount stage, measured against ground truth.
     KnownPresence,
 }
 
@@ -545,10 +546,15 @@ impl SharesEstimator {
                     present[best] = true;
                 }
             }
-            (SharesMode::KnownPresence, _) => {
+            (SharesMode::KnownPresence, model) => {
                 present[..self.families].copy_from_slice(&self.known[..self.families]);
                 for f in 0..self.families {
                     presence[f] = if present[f] { 1.0 } else { 0.0 };
+                }
+                // The product's amount stage includes the network's blend.
+                if let Some(model) = model {
+                    let x = self.context.features();
+                    use_direct = model.shares_into(x, &mut self.scratch, &mut direct);
                 }
             }
             _ => {
@@ -859,6 +865,46 @@ mod tests {
                 assert!(u.present[f] || u.raw.share[f] == 0.0);
             }
         }
+    }
+
+    #[test]
+    fn known_presence_keeps_the_given_families_and_the_network_s_blend() {
+        let p = synthetic_palette(true);
+        let x = test_mix();
+        let with_exponent = |e: f32| {
+            let mut model = p.presence().expect("model").clone();
+            let net = model.shares.as_mut().expect("net");
+            net.exponent = e;
+            // An admission nearly any share passes: known presence must not use it.
+            net.admit = Some(1e-6);
+            p.clone().with_presence(Some(model)).expect("valid")
+        };
+        let known = |palette: &Palette| {
+            let settings = SharesSettings {
+                response_ms: 0.0,
+                mode: SharesMode::KnownPresence,
+            };
+            let mut t = SharesTracker::new(palette, settings, SR).expect("tracker");
+            t.estimator_mut().set_known_presence(&[true, false, true]);
+            let mut out = Vec::new();
+            t.process(&x, |u| out.push(*u));
+            t.finish(|u| out.push(*u));
+            out
+        };
+        let plain = known(&with_exponent(0.0));
+        let blended = known(&with_exponent(2.0));
+        assert_eq!(plain.len(), blended.len());
+        let mut moved = 0.0_f32;
+        for (a, b) in plain.iter().zip(&blended).filter(|(a, _)| a.raw.signal) {
+            for u in [a, b] {
+                assert_eq!(u.present[..3], [true, false, true]);
+                assert_eq!(u.raw.share[1], 0.0);
+                let sum = u.raw.share[..3].iter().sum::<f32>() + u.raw.unexplained;
+                assert!((sum - 1.0).abs() < 1e-4, "{sum}");
+            }
+            moved = moved.max((a.raw.share[0] - b.raw.share[0]).abs());
+        }
+        assert!(moved > 0.01, "the blend changed nothing: {moved}");
     }
 
     #[test]
