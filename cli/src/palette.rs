@@ -16,6 +16,7 @@ use weft_engine::scene::{
 };
 use weft_engine::shares::check::CheckReport;
 use weft_engine::shares::presence::{MAX_HIDDEN, MAX_SHARE_EXPONENT};
+use weft_engine::shares::trees::{MAX_DEPTH, MAX_TREES, TreeTraining};
 use weft_engine::shares::{PresenceTraining, ShareTraining, SharesMode};
 
 /// The SoundFont Debian's `fluid-soundfont-gm` installs.
@@ -74,6 +75,10 @@ pub struct BuildOptions {
     /// Length of each training mix, seconds.
     #[arg(long, default_value_t = BuildPlan::default().mix_s)]
     pub mix_seconds: f64,
+    /// Keep every Nth presence row of each training mix (1: all). A mix's rows sound alike:
+    /// more mixes with fewer rows each teach more in the same memory.
+    #[arg(long, default_value_t = BuildPlan::default().row_stride, value_parser = parse_row_stride)]
+    pub row_stride: usize,
     /// Atoms per family.
     #[arg(long, default_value_t = LearnSettings::default().atoms)]
     pub atoms: usize,
@@ -125,6 +130,13 @@ pub struct BuildOptions {
     /// the presence stage left out (0: never).
     #[arg(long, default_value_t = ShareTraining::default().admit, value_parser = parse_share_admit)]
     pub share_admit: f32,
+    /// Boosted trees per family trained beside the presence network, whose logit is averaged
+    /// with the network's (0: none). Fewer are kept when held-back mixes stop improving.
+    #[arg(long, default_value_t = TreeTraining::default().trees, value_parser = parse_trees)]
+    pub trees: usize,
+    /// Depth of each boosted tree.
+    #[arg(long, default_value_t = TreeTraining::default().depth, value_parser = parse_tree_depth)]
+    pub tree_depth: usize,
     /// Worker threads (default: all cores).
     #[arg(long)]
     pub threads: Option<usize>,
@@ -239,6 +251,27 @@ fn parse_share_admit(s: &str) -> Result<f32, String> {
     }
 }
 
+fn parse_row_stride(s: &str) -> Result<usize, String> {
+    match s.parse::<usize>() {
+        Ok(n) if (1..=100).contains(&n) => Ok(n),
+        _ => Err(format!("'{s}' is not a whole number from 1 to 100")),
+    }
+}
+
+fn parse_trees(s: &str) -> Result<usize, String> {
+    match s.parse::<usize>() {
+        Ok(t) if t <= MAX_TREES => Ok(t),
+        _ => Err(format!("'{s}' is not a whole number from 0 to {MAX_TREES}")),
+    }
+}
+
+fn parse_tree_depth(s: &str) -> Result<usize, String> {
+    match s.parse::<usize>() {
+        Ok(d) if (1..=MAX_DEPTH).contains(&d) => Ok(d),
+        _ => Err(format!("'{s}' is not a whole number from 1 to {MAX_DEPTH}")),
+    }
+}
+
 fn parse_members(s: &str) -> Result<usize, String> {
     match s.parse::<usize>() {
         Ok(m) if (1..=16).contains(&m) => Ok(m),
@@ -349,6 +382,7 @@ fn plan_from(o: &BuildOptions) -> Result<BuildPlan> {
         },
         training_mixes: o.mixes,
         mix_s: o.mix_seconds,
+        row_stride: o.row_stride,
         presence: PresenceTraining {
             hidden: o.hidden,
             epochs: o.epochs,
@@ -360,6 +394,11 @@ fn plan_from(o: &BuildOptions) -> Result<BuildPlan> {
                 exponent: o.share_exponent,
                 admit: o.share_admit,
                 ..ShareTraining::default()
+            },
+            trees: TreeTraining {
+                trees: o.trees,
+                depth: o.tree_depth,
+                ..TreeTraining::default()
             },
             ..PresenceTraining::default()
         },

@@ -67,6 +67,25 @@ fn direct_share_network_options_are_refused_first_when_out_of_range() {
 }
 
 #[test]
+fn tree_and_row_options_are_refused_first_when_out_of_range() {
+    for (option, bad, want) in [
+        ("--trees", "2001", "from 0 to 2000"),
+        ("--trees", "-1", "from 0 to 2000"),
+        ("--tree-depth", "0", "from 1 to 10"),
+        ("--tree-depth", "11", "from 1 to 10"),
+        ("--row-stride", "0", "from 1 to 100"),
+        ("--row-stride", "many", "from 1 to 100"),
+    ] {
+        let (ok, err) = learn_nowhere(&[&format!("{option}={bad}")]);
+        assert!(!ok);
+        assert!(err.contains(want), "{option} {bad}: {err}");
+    }
+    let (ok, err) = learn_nowhere(&["--trees", "300", "--tree-depth", "6", "--row-stride", "3"]);
+    assert!(!ok);
+    assert!(err.contains("/nonexistent/folders"), "{err}");
+}
+
+#[test]
 fn analysis_settings_a_palette_cannot_hold_are_refused_first() {
     // Limits of the palette format (weft_engine::palette::MAX_ATOMS_PER_FAMILY, MAX_STACK).
     for (args, want) in [

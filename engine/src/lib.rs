@@ -25,6 +25,7 @@ pub mod evaluation;
 pub mod frames;
 pub mod level;
 pub mod palette;
+mod parallel;
 pub mod scene;
 pub mod shares;
 pub mod spectrum;

@@ -8,6 +8,8 @@ use weft_engine::palette::{
     BuildPlan, CheckPlan, Family, LearnSettings, Provenance, build_palette, check_palette,
 };
 use weft_engine::scene::{ClipBank, Composer, FamilyVoicing, Role, SoundFontRenderer, VoiceSource};
+use weft_engine::shares::check::CheckReport;
+use weft_engine::shares::trees::TreeTraining;
 use weft_engine::shares::{PresenceTraining, SharesMode};
 
 const SOUNDFONT: &str = "/usr/share/sounds/sf2/FluidR3_GM.sf2";
@@ -56,8 +58,8 @@ fn clip_voicing(name: &str) -> FamilyVoicing {
     }
 }
 
-#[test]
-fn own_recordings_are_learned_and_detected() {
+/// Learns the three families with `plan` and checks the palette on held-out recordings.
+fn learn_and_check(plan: &BuildPlan) -> (weft_engine::palette::Palette, CheckReport) {
     let file = std::fs::File::open(SOUNDFONT)
         .unwrap_or_else(|e| panic!("{SOUNDFONT} is missing ({e}): run cargo xtask setup"));
     let renderer = SoundFontRenderer::new(&mut std::io::BufReader::new(file), SR).expect("loads");
@@ -66,19 +68,6 @@ fn own_recordings_are_learned_and_detected() {
     let train = recordings(&renderer, 1, 2, 6.0);
     let held_out = recordings(&renderer, 5000, 2, 6.0);
     let voicings: Vec<FamilyVoicing> = names.iter().map(|n| clip_voicing(n)).collect();
-    let plan = BuildPlan {
-        learn: LearnSettings {
-            atoms: 8,
-            iterations: 80,
-            ..LearnSettings::default()
-        },
-        training_mixes: 60,
-        mix_s: 3.0,
-        max_families: 3,
-        presence: PresenceTraining::default(),
-        seed: 3,
-        ..BuildPlan::default()
-    };
     let families = names
         .iter()
         .enumerate()
@@ -95,7 +84,7 @@ fn own_recordings_are_learned_and_detected() {
         None,
         &Composer::new(voicings.clone(), train.counts(), 1.0),
         &train,
-        &plan,
+        plan,
         Provenance::default(),
         &|_| {},
     )
@@ -116,6 +105,29 @@ fn own_recordings_are_learned_and_detected() {
         SharesMode::TwoStage,
     )
     .expect("checks");
+    (palette, r)
+}
+
+fn plan(presence: PresenceTraining, row_stride: usize) -> BuildPlan {
+    BuildPlan {
+        learn: LearnSettings {
+            atoms: 8,
+            iterations: 80,
+            ..LearnSettings::default()
+        },
+        training_mixes: 60,
+        mix_s: 3.0,
+        row_stride,
+        max_families: 3,
+        presence,
+        seed: 3,
+        ..BuildPlan::default()
+    }
+}
+
+#[test]
+fn own_recordings_are_learned_and_detected() {
+    let (_, r) = learn_and_check(&plan(PresenceTraining::default(), 1));
     let j = r.to_json();
     println!("seeds 1/5000/3/9: {j}");
     // Bounds: what this test reached when written (worst recall 0.71, F1 0.85, 39 % energy
@@ -134,5 +146,31 @@ fn own_recordings_are_learned_and_detected() {
     }
     assert!(r.family.f1 >= 0.75, "{j}");
     assert!(r.family.tv_pct < r.family.uniform_tv_pct, "{j}");
+    assert!(r.family.tv_pct <= 46.0, "{j}");
+}
+
+#[test]
+fn boosted_trees_and_every_second_row_still_detect_own_recordings() {
+    let presence = PresenceTraining {
+        trees: TreeTraining {
+            trees: 40,
+            depth: 3,
+            ..TreeTraining::default()
+        },
+        ..PresenceTraining::default()
+    };
+    let (palette, r) = learn_and_check(&plan(presence, 2));
+    let j = r.to_json();
+    println!("seeds 1/5000/3/9, trees, every second row: {j}");
+    let trees = palette
+        .presence()
+        .and_then(|m| m.trees.as_ref())
+        .expect("the palette carries its trees");
+    assert!(
+        (1..=40).contains(&trees.trees) && trees.depth == 3,
+        "{trees:?}"
+    );
+    // Bounds: those of the test above (the same recordings, half the rows).
+    assert!(r.family.f1 >= 0.75, "{j}");
     assert!(r.family.tv_pct <= 46.0, "{j}");
 }

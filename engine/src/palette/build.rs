@@ -10,6 +10,7 @@ use super::{
     AnalysisSpec, Family, LearnSettings, MAX_ATOMS_PER_FAMILY, Palette, PaletteError, Provenance,
 };
 use super::{learn_family_atoms, stacked_columns};
+use crate::parallel::parallel;
 use crate::scene::{ClipBank, Composer, Mix, MixSpec, SceneError, SceneRng, SoundFontRenderer};
 use crate::shares::check::{CheckReport, MixRecord, column_residuals, evaluate_mix, presence_rows};
 use crate::shares::presence::{
@@ -63,6 +64,10 @@ pub struct BuildPlan {
     pub training_mixes: usize,
     /// Length of each mix, seconds.
     pub mix_s: f64,
+    /// Presence rows kept from each training mix: every `row_stride`-th (1: all), starting
+    /// from a different one in each mix. The rows of one mix overlap in time and sound alike,
+    /// so more mixes with fewer rows each teach the models more in the same memory.
+    pub row_stride: usize,
     /// Most families in a mix.
     pub max_families: usize,
     /// Range of family gains, dB.
@@ -88,6 +93,7 @@ impl Default for BuildPlan {
             study_note_s: (0.6, 0.25),
             training_mixes: 1500,
             mix_s: 3.0,
+            row_stride: 1,
             max_families: 5,
             gain_range_db: (-24.0, 0.0),
             clip_probability: 0.6,
@@ -173,37 +179,33 @@ fn tell_tenths(progress: &(dyn Fn(&str) + Sync), what: &str, done: usize, total:
     }
 }
 
-/// Runs `job(i)` for `i in 0..n` on `threads` threads (each takes the next index when it is
-/// free), results in order.
-fn parallel<T: Send>(n: usize, threads: usize, job: impl Fn(usize) -> T + Sync) -> Vec<T> {
-    use std::sync::Mutex;
-    use std::sync::atomic::{AtomicUsize, Ordering};
-    let threads = threads.clamp(1, 64).min(n.max(1));
-    let next = AtomicUsize::new(0);
-    let slots: Mutex<Vec<Option<T>>> = Mutex::new((0..n).map(|_| None).collect());
-    std::thread::scope(|s| {
-        for _ in 0..threads {
-            s.spawn(|| {
-                loop {
-                    let i = next.fetch_add(1, Ordering::Relaxed);
-                    if i >= n {
-                        break;
-                    }
-                    let r = job(i);
-                    let mut guard = slots
-                        .lock()
-                        .unwrap_or_else(std::sync::PoisonError::into_inner);
-                    guard[i] = Some(r);
-                }
-            });
+/// Keeps every `stride`-th row (from row `offset % stride` on) of `arrays` (each with its
+/// values per row) and of `labels` (`per_label` per row), in place.
+fn keep_every(
+    stride: usize,
+    offset: usize,
+    arrays: [(&mut Vec<f32>, usize); 2],
+    labels: &mut Vec<bool>,
+    per_label: usize,
+) {
+    let stride = stride.max(1);
+    if stride == 1 {
+        return;
+    }
+    let first = offset % stride;
+    fn keep<T: Copy>(v: &mut Vec<T>, width: usize, first: usize, stride: usize) {
+        let rows = v.len() / width.max(1);
+        let mut out = 0;
+        for r in (first..rows).step_by(stride) {
+            v.copy_within(r * width..(r + 1) * width, out * width);
+            out += 1;
         }
-    });
-    slots
-        .into_inner()
-        .unwrap_or_else(std::sync::PoisonError::into_inner)
-        .into_iter()
-        .flatten()
-        .collect()
+        v.truncate(out * width);
+    }
+    for (v, width) in arrays {
+        keep(v, width, first, stride);
+    }
+    keep(labels, per_label, first, stride);
 }
 
 /// One training mix's presence rows: features, labels and exact shares (see
@@ -379,6 +381,7 @@ pub fn build_palette(
         plan.training_mixes
     ));
     let candidates: Vec<usize> = (0..nf).collect();
+    let features = feature_count(nf, palette.atom_counts().iter().sum());
     // Training mix `i`, the same for the presence rows and the tolerance calibration.
     let training_mix = |i: usize| {
         let seed = SceneRng::derive(plan.seed ^ TRAIN_STREAM, i as u64).next_u64();
@@ -404,6 +407,13 @@ pub fn build_palette(
             let mut labels = Vec::new();
             let mut shares = Vec::new();
             presence_rows(&palette, &mix, &mut rows, &mut labels, &mut shares)?;
+            keep_every(
+                plan.row_stride,
+                i,
+                [(&mut rows, features), (&mut shares, nf)],
+                &mut labels,
+                nf,
+            );
             let done = rendered.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
             tell_tenths(
                 progress,
@@ -423,18 +433,29 @@ pub fn build_palette(
         y.extend(b);
         truth.extend(c);
     }
-    let features = feature_count(nf, palette.atom_counts().iter().sum());
     progress(&format!(
-        "training the presence model on {} rows ({} features, {} × {} hidden units)",
+        "training the presence model on {} rows ({} features, {} × {} hidden units{})",
         x.len() / features,
         features,
         plan.presence.members.max(1),
-        plan.presence.hidden
+        plan.presence.hidden,
+        match plan.presence.trees.trees {
+            0 => String::new(),
+            t => format!(
+                ", up to {t} boosted trees of depth {} per family",
+                plan.presence.trees.depth
+            ),
+        }
     ));
     let mut training = plan.presence;
     training.seed = SceneRng::derive(plan.seed, 77).next_u64();
     training.threads = plan.threads;
-    let epochs = |done, total| tell_tenths(progress, "presence epochs", done, total);
+    let what = if plan.presence.trees.trees > 0 {
+        "presence epochs and trees"
+    } else {
+        "presence epochs"
+    };
+    let epochs = |done, total| tell_tenths(progress, what, done, total);
     let mut model = train_presence_reporting(&x, features, &y, nf, &training, &epochs);
     if training.shares.hidden > 0 {
         progress(&format!(
@@ -516,7 +537,47 @@ pub fn check_palette(
 
 #[cfg(test)]
 mod tests {
-    use super::tell_tenths;
+    use super::{keep_every, tell_tenths};
+
+    #[test]
+    fn every_nth_row_is_kept_from_an_offset_with_its_labels_and_shares() {
+        // 7 rows of 3 features (row r holds r, r + 0.1, r + 0.2), 2 shares and 2 labels.
+        let rows = |n: usize| -> Vec<f32> {
+            (0..n)
+                .flat_map(|r| [r as f32, r as f32 + 0.1, r as f32 + 0.2])
+                .collect()
+        };
+        let shares =
+            |n: usize| -> Vec<f32> { (0..n).flat_map(|r| [r as f32, -(r as f32)]).collect() };
+        let labels =
+            |n: usize| -> Vec<bool> { (0..n).flat_map(|r| [r % 2 == 0, r % 3 == 0]).collect() };
+        for (stride, offset, kept) in [
+            (1, 5, vec![0, 1, 2, 3, 4, 5, 6]),
+            (3, 0, vec![0, 3, 6]),
+            (3, 4, vec![1, 4]),
+            (10, 2, vec![2]),
+        ] {
+            let (mut x, mut s, mut y) = (rows(7), shares(7), labels(7));
+            keep_every(stride, offset, [(&mut x, 3), (&mut s, 2)], &mut y, 2);
+            let want_x: Vec<f32> = kept
+                .iter()
+                .flat_map(|&r| rows(7)[3 * r..3 * r + 3].to_vec())
+                .collect();
+            let want_s: Vec<f32> = kept
+                .iter()
+                .flat_map(|&r| shares(7)[2 * r..2 * r + 2].to_vec())
+                .collect();
+            let want_y: Vec<bool> = kept
+                .iter()
+                .flat_map(|&r| labels(7)[2 * r..2 * r + 2].to_vec())
+                .collect();
+            assert_eq!(
+                (x, s, y),
+                (want_x, want_s, want_y),
+                "stride {stride}, offset {offset}"
+            );
+        }
+    }
     use std::sync::Mutex;
 
     /// The lines `tell_tenths` writes over a step of `total`.

@@ -9,7 +9,7 @@
 //! | 8 | number of atom values `m`, u64 little-endian (must equal Σ counts × bands × stack) |
 //! | 4·m | atom values, f32 little-endian, family by family, atom by atom |
 //! | 8 | number of weight values `w`, u64 little-endian (must equal what the presence model's shapes need; 0 without one) |
-//! | 4·w | the presence model's weights, f32 little-endian: mean, scale, w1, b1, w2, b2, then the direct share network's w1, b1, w2, b2 |
+//! | 4·w | the presence model's weights, f32 little-endian: mean, scale, w1, b1, w2, b2, then the direct share network's w1, b1, w2, b2, then the boosted trees' base, split features, split values and leaves |
 //!
 //! Nothing may follow. Every size is checked against the bytes left and against a limit before
 //! anything is allocated, so a hostile file costs at most its own size.
@@ -292,6 +292,49 @@ mod tests {
             assert_eq!(p, q);
             assert_eq!(bytes, q.to_bytes());
         }
+    }
+
+    #[test]
+    fn boosted_trees_travel_in_the_binary_section() {
+        let mut rng = SceneRng::new(8);
+        let d = feature_count(2, 5);
+        let rows: Vec<f32> = (0..60 * d).map(|_| rng.unit() as f32).collect();
+        let labels: Vec<bool> = (0..120).map(|i| i % 3 == 0).collect();
+        let opts = PresenceTraining {
+            hidden: 4,
+            epochs: 2,
+            trees: crate::shares::trees::TreeTraining {
+                trees: 3,
+                depth: 2,
+                patience: 100,
+                ..Default::default()
+            },
+            ..PresenceTraining::default()
+        };
+        let model = train_presence(&rows, d, &labels, 2, &opts);
+        let trees = model.trees.clone().expect("trees trained");
+        // Random labels: the held-back rows may keep fewer than 3.
+        let count = trees.trees;
+        assert!((1..=3).contains(&count), "{count} trees");
+        let p = small(3, false).with_presence(Some(model)).expect("valid");
+        let bytes = p.to_bytes();
+        let q = Palette::from_bytes(&bytes).expect("reads back");
+        assert_eq!(q.presence().and_then(|m| m.trees.as_ref()), Some(&trees));
+        assert_eq!(bytes, q.to_bytes());
+        // The header keeps the shapes only; the values are binary.
+        let header = String::from_utf8_lossy(&bytes[16..bytes.len().min(4096)]).into_owned();
+        let shape = format!("\"trees\":{{\"trees\":{count},\"depth\":2}}");
+        assert!(header.contains(&shape), "{header}");
+        // A damaged tree is refused with its reason.
+        let mut bad = q.presence().cloned().expect("model");
+        if let Some(t) = &mut bad.trees {
+            t.split_feature[0] = 1e6;
+        }
+        let err = small(3, false)
+            .with_presence(Some(bad))
+            .expect_err("refused")
+            .to_string();
+        assert!(err.contains("feature"), "{err}");
     }
 
     #[test]

@@ -7,6 +7,7 @@
 //!   the command-line tool, palette learning and checks use it.
 //! - [`nmf`]: β-divergence NMF (fixed dictionary, and dictionary learning).
 //! - [`presence`]: the presence features and models.
+//! - [`trees`]: gradient-boosted trees, the presence model's second opinion.
 //! - [`check`]: scoring against exact ground truth.
 
 pub mod check;
@@ -16,6 +17,7 @@ pub mod fine;
 pub mod nmf;
 pub mod presence;
 mod tracker;
+pub mod trees;
 
 pub use columns::ColumnStream;
 pub use estimator::{

@@ -39,6 +39,10 @@
 //! Dietterich, *Ensemble Methods in Machine Learning*, 2000): their mean logit is itself one
 //! network with all their hidden units, so the palette stores and runs it as one.
 //!
+//! **Boosted trees** (optional, [`super::trees`]): per family, gradient-boosted regression
+//! trees over the raw features; when the model carries them, each family's logit is the mean of
+//! the network's and the trees', and the thresholds are chosen on that mean.
+//!
 //! **Direct share network** (optional, [`ShareNetwork`]): a second network over the same
 //! standardised features whose softmax output estimates each family's share of the energy
 //! itself, fitted to the exact shares of the same training mixes (cross-entropy with soft
@@ -48,6 +52,7 @@
 
 use super::fine::FINE_VALUES;
 use super::nmf::dot;
+use super::trees::{BoostedTrees, TreeTraining, train_trees};
 use crate::scene::SceneRng;
 use ndarray::linalg::general_mat_mul;
 use ndarray::{Array2, ArrayView1, ArrayView2, ArrayViewMut2, Axis, Slice};
@@ -128,6 +133,10 @@ pub struct PresenceModel {
     /// The direct share network over the same standardised features, if trained.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub shares: Option<ShareNetwork>,
+    /// Boosted trees over the raw features, if trained: each family's logit is then the mean
+    /// of the network's and the trees'.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub trees: Option<BoostedTrees>,
 }
 
 /// A network that estimates each family's share of the energy directly from the presence
@@ -179,7 +188,7 @@ impl PresenceModel {
 
     /// The weight arrays a palette file keeps in its binary section (everything but the
     /// thresholds), in file order: mean, scale, w1, b1, w2, b2, then the direct share
-    /// network's w1, b1, w2, b2.
+    /// network's w1, b1, w2, b2, then the boosted trees' arrays.
     pub(crate) fn weight_arrays_mut(&mut self) -> Vec<&mut Vec<f32>> {
         let mut v = vec![
             &mut self.mean,
@@ -191,6 +200,9 @@ impl PresenceModel {
         ];
         if let Some(n) = &mut self.shares {
             v.extend([&mut n.w1, &mut n.b1, &mut n.w2, &mut n.b2]);
+        }
+        if let Some(t) = &mut self.trees {
+            v.extend(t.arrays_mut());
         }
         v
     }
@@ -216,6 +228,9 @@ impl PresenceModel {
                 families.saturating_mul(hs),
                 families,
             ]);
+        }
+        if let Some(t) = &self.trees {
+            v.extend(t.lengths(families));
         }
         v
     }
@@ -275,6 +290,9 @@ impl PresenceModel {
         if let Some(net) = &self.shares {
             net.check(self.features, families)?;
         }
+        if let Some(trees) = &self.trees {
+            trees.check(self.features, families)?;
+        }
         Ok(())
     }
 
@@ -328,7 +346,10 @@ impl PresenceModel {
         for (f, o) in out.iter_mut().enumerate().take(self.b2.len()) {
             let row = &self.w2[f * n..(f + 1) * n];
             let a = self.b2[f] + dot(row, inputs);
-            *o = sigmoid(a);
+            *o = sigmoid(match &self.trees {
+                Some(t) => 0.5 * (a + t.logit(f, x)),
+                None => a,
+            });
         }
     }
 }
@@ -446,6 +467,8 @@ pub struct PresenceTraining {
     pub threads: usize,
     /// The direct share network trained beside the presence model (none by default).
     pub shares: ShareTraining,
+    /// Boosted trees trained beside the network (none by default).
+    pub trees: TreeTraining,
 }
 
 /// How a direct share network ([`ShareNetwork`]) is trained: Adam on the cross-entropy of
@@ -506,6 +529,7 @@ impl Default for PresenceTraining {
             members: 1,
             threads: 1,
             shares: ShareTraining::default(),
+            trees: TreeTraining::default(),
         }
     }
 }
@@ -582,7 +606,7 @@ pub fn train_presence_reporting(
     };
     // A logistic regression is convex: members would all reach the same weights.
     let members = if hidden == 0 { 1 } else { members };
-    let epochs = EpochCount::new(members * opts.epochs, report);
+    let epochs = EpochCount::new(members * opts.epochs + families * opts.trees.trees, report);
     let threads = opts.threads.clamp(1, members);
     let mut fitted: Vec<Option<Params>> = vec![None; members];
     std::thread::scope(|scope| {
@@ -608,6 +632,20 @@ pub fn train_presence_reporting(
         families,
     );
     let hidden = hidden * members;
+    let trees = train_trees(
+        rows,
+        features,
+        labels,
+        families,
+        fit,
+        tune,
+        &pos_weight,
+        &opts.trees,
+        SceneRng::derive(opts.seed, TREE_STREAM).next_u64(),
+        opts.threads,
+        &|| epochs.epoch_done(),
+    );
+    epochs.finish();
     // Thresholds: maximise F_β on the held-back rows (0.5 when there are none).
     let b2 = f64::from(opts.threshold_beta.clamp(0.05, 20.0)).powi(2);
     let mut hbuf = vec![0.0_f32; hidden];
@@ -622,8 +660,16 @@ pub fn train_presence_reporting(
             &mut hbuf,
             &mut out,
         );
-        for (p, &a) in probs[r * families..(r + 1) * families].iter_mut().zip(&out) {
-            *p = sigmoid(a);
+        let x = &rows[i * features..(i + 1) * features];
+        for (f, (p, &a)) in probs[r * families..(r + 1) * families]
+            .iter_mut()
+            .zip(&out)
+            .enumerate()
+        {
+            *p = sigmoid(match &trees {
+                Some(t) => 0.5 * (a + t.logit(f, x)),
+                None => a,
+            });
         }
     }
     let thresholds = (0..families)
@@ -666,6 +712,7 @@ pub fn train_presence_reporting(
         b2: params.b2,
         thresholds,
         shares: None,
+        trees,
     }
 }
 
@@ -792,6 +839,7 @@ fn standardised(rows: &[f32], mean: &[f32], scale: &[f32]) -> Vec<f32> {
 /// Seed streams of the networks' initial weights and shuffles (member `m` adds `1000 m`).
 const PRESENCE_STREAM: u64 = 31;
 const SHARE_STREAM: u64 = 7919;
+const TREE_STREAM: u64 = 104_729;
 
 /// What a network is fitted to, per row and family.
 #[derive(Clone, Copy)]
@@ -874,6 +922,16 @@ impl<'a> EpochCount<'a> {
     fn epoch_done(&self) {
         let done = self.done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
         (self.report)(done, self.total);
+    }
+
+    /// Tells the whole count done, if steps that stop early (trees) left it short.
+    fn finish(&self) {
+        let done = self
+            .done
+            .swap(self.total, std::sync::atomic::Ordering::Relaxed);
+        if done < self.total {
+            (self.report)(self.total, self.total);
+        }
     }
 }
 
@@ -1382,6 +1440,7 @@ mod tests {
             b2: vec![0.0; families],
             thresholds: vec![0.5; families],
             shares: None,
+            trees: None,
         };
         let v1 = model(PRESENCE_SCHEMA_V1, feature_count_v1(families, atoms));
         let v2 = model(PRESENCE_SCHEMA_V2, feature_count_v2(families, atoms));
@@ -1812,6 +1871,7 @@ mod tests {
             members,
             threads,
             shares: ShareTraining::default(),
+            trees: TreeTraining::default(),
         };
         let one = train_presence(&rows, 2, &labels, 2, &opts(1, 1));
         let three = train_presence(&rows, 2, &labels, 2, &opts(3, 1));
@@ -1849,6 +1909,7 @@ mod tests {
             members: 3,
             threads: 2,
             shares: ShareTraining::default(),
+            trees: TreeTraining::default(),
         };
         let told = Mutex::new(Vec::new());
         let report =
@@ -1873,5 +1934,18 @@ mod tests {
         assert_eq!(net, train_share_network(&rows, &shares, &reported, &opts));
         let got = std::mem::take(&mut *told.lock().expect("not poisoned"));
         assert_eq!(got, vec![(1, 3), (2, 3), (3, 3)]);
+        // Boosted trees count as steps of the presence fit: 15 epochs and 2 × 4 trees.
+        opts.trees = TreeTraining {
+            trees: 4,
+            depth: 2,
+            patience: 100,
+            ..TreeTraining::default()
+        };
+        let with_trees = train_presence_reporting(&rows, 2, &labels, 2, &opts, &report);
+        assert_eq!(with_trees.trees.as_ref().map(|t| t.trees), Some(4));
+        let mut got = std::mem::take(&mut *told.lock().expect("not poisoned"));
+        got.sort_unstable();
+        let want: Vec<(usize, usize)> = (1..=23).map(|d| (d, 23)).collect();
+        assert_eq!(got, want, "15 epochs and 8 trees, each told once");
     }
 }
