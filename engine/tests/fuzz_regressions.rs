@@ -2,9 +2,9 @@
 //!
 //! - every input in the fuzzing regression corpus, `tests/corpus/palette_load/` and
 //!   `tests/corpus/style_model_load/` (inputs the fuzzers found or that mark a limit);
-//! - seeded damage of valid files: the built-in palette, a small palette with a presence model,
-//!   and a style model of each kind written by the engine — cut at many places, bit-flipped,
-//!   and (for the JSON) with numbers swapped for hostile ones.
+//! - seeded damage of valid files: the built-in palette, a small palette with a presence model
+//!   and boosted trees, and a style model of each kind written by the engine — cut at many
+//!   places, bit-flipped, and (for the JSON) with numbers swapped for hostile ones.
 //!
 //! Each input goes through the same rules as the fuzz targets (`fuzz/src/lib.rs`, compiled
 //! here): `Ok` or `Err`, never a panic, and what loads must be usable.
@@ -24,6 +24,7 @@ use std::path::{Path, PathBuf};
 use weft_engine::evaluation::{cross_validate, default_folds};
 use weft_engine::palette::{AnalysisSpec, Family, Palette, Provenance};
 use weft_engine::shares::presence::feature_count;
+use weft_engine::shares::trees::TreeTraining;
 use weft_engine::shares::{PresenceTraining, train_presence};
 use weft_engine::style::{
     FeatureMatrix, FeatureSchema, ForestParams, LabelledWindows, ModelKind, ModelParams, StyleModel,
@@ -180,8 +181,9 @@ fn damage(target: Target, name: &str, valid: &[u8], rng: &mut SmallRng, tally: &
     }
 }
 
-/// A small palette (2 families, 16 bands, 2 stacked columns) with a presence model: cheap to
-/// load, so the fuzzer mutates a whole valid file rather than a truncated large one.
+/// A small palette (2 families, 16 bands, 2 stacked columns) with a presence model and boosted
+/// trees: cheap to load, so the fuzzer mutates a whole valid file rather than a truncated large
+/// one.
 fn small_palette(seed: u64) -> Palette {
     let mut rng = SmallRng::seed_from_u64(seed);
     let analysis = AnalysisSpec {
@@ -205,6 +207,13 @@ fn small_palette(seed: u64) -> Palette {
             hidden: 4,
             epochs: 2,
             seed,
+            // A few boosted trees, so damage reaches their arrays and shapes too.
+            trees: TreeTraining {
+                trees: 3,
+                depth: 2,
+                patience: 100,
+                ..TreeTraining::default()
+            },
             ..PresenceTraining::default()
         },
     );
