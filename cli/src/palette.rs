@@ -226,13 +226,16 @@ fn parse_beta(s: &str) -> Result<f32, String> {
     }
 }
 
-fn parse_share_hidden(s: &str) -> Result<usize, String> {
+/// `s` as a whole number from `lo` to `hi`, or an error naming the range.
+fn whole_number(s: &str, lo: usize, hi: usize) -> Result<usize, String> {
     match s.parse::<usize>() {
-        Ok(h) if h <= MAX_HIDDEN => Ok(h),
-        _ => Err(format!(
-            "'{s}' is not a whole number from 0 to {MAX_HIDDEN}"
-        )),
+        Ok(n) if (lo..=hi).contains(&n) => Ok(n),
+        _ => Err(format!("'{s}' is not a whole number from {lo} to {hi}")),
     }
+}
+
+fn parse_share_hidden(s: &str) -> Result<usize, String> {
+    whole_number(s, 0, MAX_HIDDEN)
 }
 
 fn parse_share_exponent(s: &str) -> Result<f32, String> {
@@ -252,31 +255,19 @@ fn parse_share_admit(s: &str) -> Result<f32, String> {
 }
 
 fn parse_row_stride(s: &str) -> Result<usize, String> {
-    match s.parse::<usize>() {
-        Ok(n) if (1..=100).contains(&n) => Ok(n),
-        _ => Err(format!("'{s}' is not a whole number from 1 to 100")),
-    }
+    whole_number(s, 1, 100)
 }
 
 fn parse_trees(s: &str) -> Result<usize, String> {
-    match s.parse::<usize>() {
-        Ok(t) if t <= MAX_TREES => Ok(t),
-        _ => Err(format!("'{s}' is not a whole number from 0 to {MAX_TREES}")),
-    }
+    whole_number(s, 0, MAX_TREES)
 }
 
 fn parse_tree_depth(s: &str) -> Result<usize, String> {
-    match s.parse::<usize>() {
-        Ok(d) if (1..=MAX_DEPTH).contains(&d) => Ok(d),
-        _ => Err(format!("'{s}' is not a whole number from 1 to {MAX_DEPTH}")),
-    }
+    whole_number(s, 1, MAX_DEPTH)
 }
 
 fn parse_members(s: &str) -> Result<usize, String> {
-    match s.parse::<usize>() {
-        Ok(m) if (1..=16).contains(&m) => Ok(m),
-        _ => Err(format!("'{s}' is not a whole number from 1 to 16")),
-    }
+    whole_number(s, 1, 16)
 }
 
 fn parse_pair(s: &str) -> Result<(String, String), String> {
