@@ -135,6 +135,9 @@ fn read_weights(r: &mut Reader<'_>, header: &mut Header) -> Result<(), PaletteEr
         array.extend_from_slice(&weights[at..at + len]);
         at += len;
     }
+    if let Some(t) = &mut model.trees {
+        t.pack();
+    }
     Ok(())
 }
 

@@ -27,6 +27,8 @@ use serde::{Deserialize, Serialize};
 pub const MAX_TREES: usize = 2000;
 /// The deepest tree a palette may carry.
 pub const MAX_DEPTH: usize = 10;
+/// Trees [`BoostedTrees::logit`] walks side by side.
+const WALK_TOGETHER: usize = 8;
 /// Split candidates per feature (quantiles of the training rows).
 const BINS: usize = 64;
 /// Rows the split candidates are taken from (evenly spaced over the training rows).
@@ -53,6 +55,12 @@ pub struct BoostedTrees {
     /// Leaf values, `families × trees × 2^depth`.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub leaf: Vec<f32>,
+    /// `split_feature` and `split_value` side by side, one pair per split: what
+    /// [`BoostedTrees::logit`] reads, so that a split costs one memory access, not two. Made by
+    /// [`BoostedTrees::pack`]; [`BoostedTrees::check`] refuses trees whose pairs are missing or
+    /// stale.
+    #[serde(skip)]
+    nodes: Vec<(u32, f32)>,
 }
 
 impl BoostedTrees {
@@ -62,21 +70,51 @@ impl BoostedTrees {
 
     /// The logit that family `family` sounds for the raw feature vector `x`. Does not
     /// allocate.
+    ///
+    /// Trees are walked [`WALK_TOGETHER`] at a time, level by level: the nodes of one tree
+    /// depend on each other, but those of different trees do not, so the processor can wait
+    /// for several of them at once. The leaves are still added in tree order.
     pub fn logit(&self, family: usize, x: &[f32]) -> f32 {
-        let s = self.splits_per_tree();
+        let first = family * self.trees;
         let mut sum = self.base[family];
-        for t in 0..self.trees {
-            let tree = family * self.trees + t;
-            let feature = &self.split_feature[tree * s..(tree + 1) * s];
-            let value = &self.split_value[tree * s..(tree + 1) * s];
-            let mut i = 0;
-            for _ in 0..self.depth {
-                let right = x[feature[i] as usize] >= value[i];
-                i = 2 * i + 1 + usize::from(right);
+        let mut t = 0;
+        while t + WALK_TOGETHER <= self.trees {
+            for leaf in self.walk::<WALK_TOGETHER>(first + t, x) {
+                sum += leaf;
             }
-            sum += self.leaf[tree * (s + 1) + (i - s)];
+            t += WALK_TOGETHER;
+        }
+        for t in t..self.trees {
+            sum += self.walk::<1>(first + t, x)[0];
         }
         sum
+    }
+
+    /// The leaf values `x` reaches in the `N` trees from tree `first` on (counted over all
+    /// families), walked side by side.
+    fn walk<const N: usize>(&self, first: usize, x: &[f32]) -> [f32; N] {
+        let s = self.splits_per_tree();
+        let mut at = [0_usize; N];
+        for _ in 0..self.depth {
+            for (k, i) in at.iter_mut().enumerate() {
+                let (feature, value) = self.nodes[(first + k) * s + *i];
+                // `check` keeps every feature below `x.len()`; a miss goes left.
+                let right = x.get(feature as usize).is_some_and(|&v| v >= value);
+                *i = 2 * *i + 1 + usize::from(right);
+            }
+        }
+        std::array::from_fn(|k| self.leaf[(first + k) * (s + 1) + (at[k] - s)])
+    }
+
+    /// Makes the pairs [`BoostedTrees::logit`] reads from `split_feature` and `split_value`;
+    /// call it after changing either.
+    pub fn pack(&mut self) {
+        self.nodes = self
+            .split_feature
+            .iter()
+            .zip(&self.split_value)
+            .map(|(&f, &v)| (f as u32, v))
+            .collect();
     }
 
     /// The lengths [`BoostedTrees::arrays_mut`]'s arrays must have for `families` families,
@@ -92,8 +130,10 @@ impl BoostedTrees {
         ]
     }
 
-    /// The arrays a palette keeps in its binary section, in file order.
+    /// The arrays a palette keeps in its binary section, in file order. The pairs
+    /// [`BoostedTrees::logit`] reads are dropped: call [`BoostedTrees::pack`] after.
     pub(crate) fn arrays_mut(&mut self) -> [&mut Vec<f32>; 4] {
+        self.nodes.clear();
         [
             &mut self.base,
             &mut self.split_feature,
@@ -146,6 +186,15 @@ impl BoostedTrees {
                 "a boosted tree splits on a feature that is not one of the {features}"
             ));
         }
+        if self.nodes.len() != self.split_feature.len()
+            || self
+                .nodes
+                .iter()
+                .zip(self.split_feature.iter().zip(&self.split_value))
+                .any(|(&(f, v), (&sf, &sv))| f as f32 != sf || v.to_bits() != sv.to_bits())
+        {
+            return Err("boosted trees were changed without being packed again".into());
+        }
         Ok(())
     }
 }
@@ -165,6 +214,10 @@ pub struct TreeTraining {
     pub min_hessian: f32,
     /// Fraction of the fit rows each tree sees.
     pub row_fraction: f32,
+    /// Fit rows each tree sees at most, whatever `row_fraction` asks: the histograms cost
+    /// in proportion to them, so a build of millions of rows stays as quick per tree as one
+    /// of a few hundred thousand.
+    pub max_rows_per_tree: usize,
     /// Fraction of the features each tree may split on.
     pub feature_fraction: f32,
     /// Trees without a better loss on the held-back rows after which a family stops.
@@ -180,6 +233,7 @@ impl Default for TreeTraining {
             l2: 1.0,
             min_hessian: 1.0,
             row_fraction: 0.5,
+            max_rows_per_tree: 150_000,
             feature_fraction: 0.3,
             patience: 30,
         }
@@ -280,6 +334,7 @@ pub fn train_trees(
         split_feature: Vec::with_capacity(families * count * s),
         split_value: Vec::with_capacity(families * count * s),
         leaf: Vec::with_capacity(families * count * (s + 1)),
+        nodes: Vec::new(),
     };
     for fam in &fitted {
         out.base.push(fam.base);
@@ -301,6 +356,7 @@ pub fn train_trees(
             }
         }
     }
+    out.pack();
     Some(out)
 }
 
@@ -387,6 +443,8 @@ impl FamilyJob<'_> {
         let mut g = vec![0.0_f32; self.fit.len()];
         let mut h = vec![0.0_f32; self.fit.len()];
         let mut sampled: Vec<usize> = Vec::with_capacity(self.fit.len());
+        let fraction = f64::from(o.row_fraction)
+            .min(o.max_rows_per_tree as f64 / self.fit.len().max(1) as f64);
         for _ in 0..o.trees {
             for (r, &i) in self.fit.iter().enumerate() {
                 let p = 1.0 / (1.0 + (-margin[r]).exp());
@@ -395,7 +453,7 @@ impl FamilyJob<'_> {
                 h[r] = (w * p * (1.0 - p)).max(1e-6);
             }
             sampled.clear();
-            sampled.extend((0..self.fit.len()).filter(|_| rng.chance(f64::from(o.row_fraction))));
+            sampled.extend((0..self.fit.len()).filter(|_| rng.chance(fraction)));
             rng.shuffle(&mut order);
             let mut chosen = order[..chosen_count].to_vec();
             chosen.sort_unstable();
@@ -576,6 +634,68 @@ mod tests {
                 .count();
             assert!(right > 1900, "family {f}: {right} of 2000 right");
         }
+        // A cap of 300 rows per tree (an eighth of the 2 400 fit rows) grows other trees that
+        // still learn both families.
+        let capped = train(
+            &x,
+            &y,
+            &TreeTraining {
+                max_rows_per_tree: 300,
+                ..opts
+            },
+            1,
+        );
+        assert_ne!(capped, one, "the cap must change which rows the trees see");
+        for f in 0..2 {
+            let right = (0..2000)
+                .filter(|&i| (capped.logit(f, &tx[3 * i..3 * i + 3]) > 0.0) == ty[2 * i + f])
+                .count();
+            assert!(right > 1800, "capped, family {f}: {right} of 2000 right");
+        }
+    }
+
+    #[test]
+    fn walking_trees_side_by_side_gives_the_plain_walk_bit_for_bit() {
+        // 13 random trees of depth 4 over 5 features for 2 families: one group of eight and
+        // a remainder of five.
+        let mut rng = SceneRng::new(21);
+        let (families, trees, depth, features) = (2, 13, 4, 5);
+        let s = (1 << depth) - 1;
+        let mut m = BoostedTrees {
+            trees,
+            depth,
+            base: vec![-0.3, 0.2],
+            split_feature: (0..families * trees * s)
+                .map(|_| (rng.unit() * features as f64).floor() as f32)
+                .collect(),
+            split_value: (0..families * trees * s)
+                .map(|_| rng.unit() as f32)
+                .collect(),
+            leaf: (0..families * trees * (s + 1))
+                .map(|_| rng.unit() as f32 - 0.5)
+                .collect(),
+            nodes: Vec::new(),
+        };
+        assert!(m.check(features, families).is_err(), "not packed yet");
+        m.pack();
+        m.check(features, families).expect("valid shapes");
+        for _ in 0..200 {
+            let x: Vec<f32> = (0..features).map(|_| rng.unit() as f32).collect();
+            for f in 0..families {
+                let mut plain = m.base[f];
+                for t in 0..trees {
+                    let tree = f * trees + t;
+                    let mut i = 0;
+                    for _ in 0..depth {
+                        let node = tree * s + i;
+                        let right = x[m.split_feature[node] as usize] >= m.split_value[node];
+                        i = 2 * i + 1 + usize::from(right);
+                    }
+                    plain += m.leaf[tree * (s + 1) + i - s];
+                }
+                assert_eq!(m.logit(f, &x).to_bits(), plain.to_bits(), "family {f}");
+            }
+        }
     }
 
     #[test]
@@ -612,8 +732,10 @@ mod tests {
         let good = train(&x, &y, &opts, 1);
         assert_eq!(good.check(3, 2), Ok(()));
         type Damage = Box<dyn Fn(&mut BoostedTrees)>;
-        let cases: [(&str, Damage); 5] = [
+        let cases: [(&str, Damage); 6] = [
             ("leaf", Box::new(|t| t.leaf.push(0.0))),
+            // A valid change that `logit` would not see until packed again.
+            ("packed", Box::new(|t| t.split_value[0] += 1.0)),
             ("feature", Box::new(|t| t.split_feature[0] = 3.0)),
             ("feature", Box::new(|t| t.split_feature[0] = 0.5)),
             ("finite", Box::new(|t| t.split_value[1] = f32::NAN)),
