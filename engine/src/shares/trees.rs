@@ -656,44 +656,47 @@ mod tests {
 
     #[test]
     fn walking_trees_side_by_side_gives_the_plain_walk_bit_for_bit() {
-        // 13 random trees of depth 4 over 5 features for 2 families: one group of eight and
-        // a remainder of five.
+        // 13 random trees over 5 features for 2 families (one group of eight and a remainder
+        // of five), at depths from 1 to 7.
         let mut rng = SceneRng::new(21);
-        let (families, trees, depth, features) = (2, 13, 4, 5);
-        let s = (1 << depth) - 1;
-        let mut m = BoostedTrees {
-            trees,
-            depth,
-            base: vec![-0.3, 0.2],
-            split_feature: (0..families * trees * s)
-                .map(|_| (rng.unit() * features as f64).floor() as f32)
-                .collect(),
-            split_value: (0..families * trees * s)
-                .map(|_| rng.unit() as f32)
-                .collect(),
-            leaf: (0..families * trees * (s + 1))
-                .map(|_| rng.unit() as f32 - 0.5)
-                .collect(),
-            nodes: Vec::new(),
-        };
-        assert!(m.check(features, families).is_err(), "not packed yet");
-        m.pack();
-        m.check(features, families).expect("valid shapes");
-        for _ in 0..200 {
-            let x: Vec<f32> = (0..features).map(|_| rng.unit() as f32).collect();
-            for f in 0..families {
-                let mut plain = m.base[f];
-                for t in 0..trees {
-                    let tree = f * trees + t;
-                    let mut i = 0;
-                    for _ in 0..depth {
-                        let node = tree * s + i;
-                        let right = x[m.split_feature[node] as usize] >= m.split_value[node];
-                        i = 2 * i + 1 + usize::from(right);
+        let (families, trees, features) = (2, 13, 5);
+        for depth in [1, 2, 3, 4, 6, 7] {
+            let s = (1 << depth) - 1;
+            let mut m = BoostedTrees {
+                trees,
+                depth,
+                base: vec![-0.3, 0.2],
+                split_feature: (0..families * trees * s)
+                    .map(|_| (rng.unit() * features as f64).floor() as f32)
+                    .collect(),
+                split_value: (0..families * trees * s)
+                    .map(|_| rng.unit() as f32)
+                    .collect(),
+                leaf: (0..families * trees * (s + 1))
+                    .map(|_| rng.unit() as f32 - 0.5)
+                    .collect(),
+                nodes: Vec::new(),
+            };
+            assert!(m.check(features, families).is_err(), "not packed yet");
+            m.pack();
+            m.check(features, families).expect("valid shapes");
+            for _ in 0..200 {
+                let x: Vec<f32> = (0..features).map(|_| rng.unit() as f32).collect();
+                for f in 0..families {
+                    let mut plain = m.base[f];
+                    for t in 0..trees {
+                        let tree = f * trees + t;
+                        let mut i = 0;
+                        for _ in 0..depth {
+                            let node = tree * s + i;
+                            let right = x[m.split_feature[node] as usize] >= m.split_value[node];
+                            i = 2 * i + 1 + usize::from(right);
+                        }
+                        plain += m.leaf[tree * (s + 1) + i - s];
                     }
-                    plain += m.leaf[tree * (s + 1) + i - s];
+                    let got = m.logit(f, &x);
+                    assert_eq!(got.to_bits(), plain.to_bits(), "depth {depth}, family {f}");
                 }
-                assert_eq!(m.logit(f, &x).to_bits(), plain.to_bits(), "family {f}");
             }
         }
     }
