@@ -180,7 +180,8 @@ fn tell_tenths(progress: &(dyn Fn(&str) + Sync), what: &str, done: usize, total:
 }
 
 /// Keeps every `stride`-th row (from row `offset % stride` on) of `arrays` (each with its
-/// values per row) and of `labels` (`per_label` per row), in place.
+/// values per row) and of `labels` (`per_label` per row), in place, and frees the room the
+/// others took.
 fn keep_every(
     stride: usize,
     offset: usize,
@@ -189,9 +190,6 @@ fn keep_every(
     per_label: usize,
 ) {
     let stride = stride.max(1);
-    if stride == 1 {
-        return;
-    }
     let first = offset % stride;
     fn keep<T: Copy>(v: &mut Vec<T>, width: usize, first: usize, stride: usize) {
         let rows = v.len() / width.max(1);
@@ -201,6 +199,9 @@ fn keep_every(
             out += 1;
         }
         v.truncate(out * width);
+        // Hundreds of thousands of mixes wait in memory until all are rendered: keep only
+        // what they hold.
+        v.shrink_to_fit();
     }
     for (v, width) in arrays {
         keep(v, width, first, stride);
@@ -540,7 +541,7 @@ mod tests {
     use super::{keep_every, tell_tenths};
 
     #[test]
-    fn every_nth_row_is_kept_from_an_offset_with_its_labels_and_shares() {
+    fn every_nth_row_is_kept_from_an_offset_with_its_labels_and_shares_and_no_more_room() {
         // 7 rows of 3 features (row r holds r, r + 0.1, r + 0.2), 2 shares and 2 labels.
         let rows = |n: usize| -> Vec<f32> {
             (0..n)
@@ -558,7 +559,10 @@ mod tests {
             (10, 2, vec![2]),
         ] {
             let (mut x, mut s, mut y) = (rows(7), shares(7), labels(7));
+            x.reserve(100);
             keep_every(stride, offset, [(&mut x, 3), (&mut s, 2)], &mut y, 2);
+            // The room of the rows left out (and any spare room) is given back.
+            assert_eq!(x.capacity(), x.len(), "stride {stride}, offset {offset}");
             let want_x: Vec<f32> = kept
                 .iter()
                 .flat_map(|&r| rows(7)[3 * r..3 * r + 3].to_vec())
