@@ -55,9 +55,15 @@ pub const SEED: &str = "1";
 /// slower). On 24 000 mixes the trees alone gave 26.8 %. These settings are not in the list below
 /// yet: the built-in palette was built without them.
 /// `weft palette learn` keeps the lighter defaults, which a user's own folders can afford.
-const PRESENCE_TRAINING: [&str; 18] = [
+const PRESENCE_TRAINING: [&str; 24] = [
     "--mixes",
-    "192000",
+    "384000",
+    "--row-stride",
+    "2",
+    "--trees",
+    "300",
+    "--tree-depth",
+    "6",
     "--mix-seconds",
     "1.5",
     "--hidden",
