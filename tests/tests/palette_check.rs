@@ -11,15 +11,17 @@ const SOUNDFONT: &str = "/usr/share/sounds/sf2/FluidR3_GM.sf2";
 const SEED: u64 = 11;
 
 /// Bounds asserted on this small check: what the built-in palette reached on this seed when it
-/// was made (18.7 %, 15.0 %, F1 0.81; the palettes before, 21.1 %, 17.7 %, 0.79, then 22.0 %,
-/// 17.6 %, 0.78, then 28.8 %, 24.4 %, 0.68, then 29.3 %, 25.1 %, 0.69, then 30.1 %, 26.1 %,
+/// was made (19.4 %, 16.2 %, F1 0.83: worse here in energy than the palette before, 18.7 %,
+/// 15.0 %, 0.81, but better in the mean of seeds 1–6 of 60 mixes in every figure, so we read the
+/// rise on these 39 windows as noise; before those, 21.1 %, 17.7 %, 0.79, then 22.0 %, 17.6 %,
+/// 0.78, then 28.8 %, 24.4 %, 0.68, then 29.3 %, 25.1 %, 0.69, then 30.1 %, 26.1 %,
 /// 0.71, then 33.3 %, 29.0 %, 0.68 and 41.1 %, 36.4 %, 0.49)
-/// with a margin of about 7 points. The goals (25 %, 15 %, 0.85) are met on this small
+/// with a margin of about 6–7 points. The goals (25 %, 15 %, 0.85) are met on this small
 /// seed for the families only; over seeds 1–6 of 60 mixes they are not (see the palette note).
 /// Regenerating the palette must not make these figures worse.
 const MAX_TV_PCT: f64 = 26.0;
 const MAX_SECTION_TV_PCT: f64 = 22.0;
-const MIN_PRESENCE_F1: f64 = 0.74;
+const MIN_PRESENCE_F1: f64 = 0.76;
 
 #[test]
 fn small_fixed_seed_check_meets_the_measured_bounds() {

@@ -52,8 +52,15 @@ pub const SEED: &str = "1";
 /// the same training time) gave 25.4 % (per section 24.0 → 22.4 %, F1 0.711 → 0.731, every seed
 /// better), and with boosted trees beside the network (`--trees 300 --tree-depth 6`) 24.4 % (per
 /// section 21.4 %, F1 0.744, every seed better than without them; analysis about 1.6 times
-/// slower). On 24 000 mixes the trees alone gave 26.8 %. These settings are not in the list below
-/// yet: the built-in palette was built without them.
+/// slower). On 24 000 mixes the trees alone gave 26.8 %. At this scale, with the same 2.44 M
+/// rows drawn from twice the mixes (384 000, every second row) and 300 trees of depth 6 per
+/// family (each tree sees at most 150 000 rows; no family stopped early), seeds 1–6 went from
+/// 23.65 to 23.04 % (per section 20.87 → 20.56 %, F1 0.746 → 0.767; every seed better per
+/// family and in F1, five of six per section) and `weft analyze` takes about 1.3 times the CPU
+/// time. 116 min on 2 cores, shared with other work (render 51, networks 20, trees 33, share
+/// network 9); 14.3 GB resident during the trees (sampled, not a measured peak). A third as
+/// many rows per mix (`--row-stride 3`) did better on small builds but needs 576 000 mixes for
+/// the same rows; it was not tried at this scale.
 /// `weft palette learn` keeps the lighter defaults, which a user's own folders can afford.
 const PRESENCE_TRAINING: [&str; 24] = [
     "--mixes",
