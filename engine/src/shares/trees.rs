@@ -34,6 +34,13 @@ const BINS: usize = 64;
 /// Rows the split candidates are taken from (evenly spaced over the training rows).
 const QUANTILE_ROWS: usize = 50_000;
 
+/// One tree's split pairs (breadth first) and leaves.
+#[derive(Debug, Clone, Copy)]
+struct TreeView<'a> {
+    nodes: &'a [(u32, f32)],
+    leaves: &'a [f32],
+}
+
 /// Per family, `trees` regression trees of depth `depth` whose leaf values add up, with the
 /// family's base, to the logit that the family sounds.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -75,35 +82,62 @@ impl BoostedTrees {
     /// depend on each other, but those of different trees do not, so the processor can wait
     /// for several of them at once. The leaves are still added in tree order.
     pub fn logit(&self, family: usize, x: &[f32]) -> f32 {
+        let mut logit = [0.0];
+        self.logits_into(family, x, x.len(), &mut logit);
+        logit[0]
+    }
+
+    /// [`BoostedTrees::logit`] of family `family` for every row of `rows` (rows of `stride`
+    /// values, as many as `logits` holds), into `logits`: the same values, bit for bit, as
+    /// one call per row. Does not allocate.
+    ///
+    /// [`WALK_TOGETHER`] trees at a time are walked for every row before the next trees: the
+    /// first row waits for their nodes from memory (for all of them at once), the other rows
+    /// find them in cache. Each row's leaves are added in tree order.
+    pub fn logits_into(&self, family: usize, rows: &[f32], stride: usize, logits: &mut [f32]) {
+        let row = |r: usize| &rows[r * stride..(r + 1) * stride];
+        logits.fill(self.base[family]);
         let first = family * self.trees;
-        let mut sum = self.base[family];
         let mut t = 0;
         while t + WALK_TOGETHER <= self.trees {
-            for leaf in self.walk::<WALK_TOGETHER>(first + t, x) {
-                sum += leaf;
+            let trees = std::array::from_fn(|k| self.tree(first + t + k));
+            for (r, l) in logits.iter_mut().enumerate() {
+                for leaf in self.walk(trees, [row(r); WALK_TOGETHER]) {
+                    *l += leaf;
+                }
             }
             t += WALK_TOGETHER;
         }
         for t in t..self.trees {
-            sum += self.walk::<1>(first + t, x)[0];
+            let tree = [self.tree(first + t)];
+            for (r, l) in logits.iter_mut().enumerate() {
+                *l += self.walk(tree, [row(r)])[0];
+            }
         }
-        sum
     }
 
-    /// The leaf values `x` reaches in the `N` trees from tree `first` on (counted over all
-    /// families), walked side by side.
-    fn walk<const N: usize>(&self, first: usize, x: &[f32]) -> [f32; N] {
-        let s = self.splits_per_tree();
+    /// The leaf values that `N` rows reach in `N` trees (tree `trees[k]` for row `xs[k]`),
+    /// walked side by side.
+    fn walk<const N: usize>(&self, trees: [TreeView<'_>; N], xs: [&[f32]; N]) -> [f32; N] {
         let mut at = [0_usize; N];
         for _ in 0..self.depth {
             for (k, i) in at.iter_mut().enumerate() {
-                let (feature, value) = self.nodes[(first + k) * s + *i];
+                let (feature, value) = trees[k].nodes[*i];
                 // `check` keeps every feature below `x.len()`; a miss goes left.
-                let right = x.get(feature as usize).is_some_and(|&v| v >= value);
+                let right = xs[k].get(feature as usize).is_some_and(|&v| v >= value);
                 *i = 2 * *i + 1 + usize::from(right);
             }
         }
-        std::array::from_fn(|k| self.leaf[(first + k) * (s + 1) + (at[k] - s)])
+        std::array::from_fn(|k| trees[k].leaves[at[k] - trees[k].nodes.len()])
+    }
+
+    /// Tree `t` (counted over all families): its split pairs and its leaves.
+    fn tree(&self, t: usize) -> TreeView<'_> {
+        let s = self.splits_per_tree();
+        TreeView {
+            nodes: &self.nodes[t * s..(t + 1) * s],
+            leaves: &self.leaf[t * (s + 1)..(t + 1) * (s + 1)],
+        }
     }
 
     /// Makes the pairs [`BoostedTrees::logit`] reads from `split_feature` and `split_value`;
@@ -680,9 +714,12 @@ mod tests {
             assert!(m.check(features, families).is_err(), "not packed yet");
             m.pack();
             m.check(features, families).expect("valid shapes");
-            for _ in 0..200 {
-                let x: Vec<f32> = (0..features).map(|_| rng.unit() as f32).collect();
-                for f in 0..families {
+            // 200 rows, also walked together in batches of every size from 1 to 19 (below,
+            // at and beyond a group of eight, with remainders).
+            let xs: Vec<f32> = (0..200 * features).map(|_| rng.unit() as f32).collect();
+            let mut plains = vec![Vec::new(); families];
+            for x in xs.chunks_exact(features) {
+                for (f, plain_f) in plains.iter_mut().enumerate() {
                     let mut plain = m.base[f];
                     for t in 0..trees {
                         let tree = f * trees + t;
@@ -694,8 +731,19 @@ mod tests {
                         }
                         plain += m.leaf[tree * (s + 1) + i - s];
                     }
-                    let got = m.logit(f, &x);
+                    let got = m.logit(f, x);
                     assert_eq!(got.to_bits(), plain.to_bits(), "depth {depth}, family {f}");
+                    plain_f.push(plain);
+                }
+            }
+            for batch in 1..20 {
+                for (f, plain) in plains.iter().enumerate() {
+                    let mut got = vec![f32::NAN; plain.len()];
+                    for (rows, out) in xs.chunks(batch * features).zip(got.chunks_mut(batch)) {
+                        m.logits_into(f, rows, features, out);
+                    }
+                    let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+                    assert_eq!(bits(&got), bits(plain), "depth {depth}, batch {batch}");
                 }
             }
         }
