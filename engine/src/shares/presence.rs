@@ -296,57 +296,106 @@ impl PresenceModel {
         Ok(())
     }
 
-    /// Scratch values [`PresenceModel::predict_into`] and [`PresenceModel::shares_into`] need.
+    /// Scratch values [`PresenceModel::predict_into`] and [`PresenceModel::shares_into`] need
+    /// per row (for `n` rows at once, `n` times as many).
     pub fn scratch_len(&self) -> usize {
         let direct = self.shares.as_ref().map_or(0, |n| n.hidden);
-        self.features + self.hidden.max(direct)
+        // The standardised row, the hidden layer, and the trees' logit.
+        self.features + self.hidden.max(direct) + 1
     }
 
     /// The direct share network's estimate of each family's share (summing to 1) into `out`;
     /// false (and `out` untouched) when the model has no such network. `scratch` as for
     /// [`PresenceModel::predict_into`]. Does not allocate.
     pub fn shares_into(&self, x: &[f32], scratch: &mut [f32], out: &mut [f32]) -> bool {
+        self.shares_many(x, x.len(), scratch, out, out.len())
+    }
+
+    /// [`PresenceModel::shares_into`] for every row of `xs` (rows of `stride` values): row
+    /// `r`'s shares go to `out[r * out_stride..]`; `scratch` holds at least
+    /// [`PresenceModel::scratch_len`] values per row. The same values, bit for bit, as one call
+    /// per row, but each weight is read from memory once for all the rows. Does not allocate.
+    pub fn shares_many(
+        &self,
+        xs: &[f32],
+        stride: usize,
+        scratch: &mut [f32],
+        out: &mut [f32],
+        out_stride: usize,
+    ) -> bool {
         let Some(net) = &self.shares else {
             return false;
         };
-        let d = self.features;
-        let (z, rest) = scratch.split_at_mut(d);
-        self.standardise(x, z);
-        let hbuf = &mut rest[..net.hidden];
-        affine(&net.w1, &net.b1, z, hbuf, true);
-        let out = &mut out[..net.b2.len()];
-        affine(&net.w2, &net.b2, hbuf, out, false);
-        softmax(out);
+        let n = xs.len() / stride;
+        let (zs, rest) = scratch.split_at_mut(n * self.features);
+        self.standardise_rows(xs, stride, zs);
+        let hs = &mut rest[..n * net.hidden];
+        affine(&net.w1, &net.b1, zs, hs, net.hidden, true);
+        affine(&net.w2, &net.b2, hs, out, out_stride, false);
+        for o in out.chunks_mut(out_stride).take(n) {
+            softmax(&mut o[..net.b2.len()]);
+        }
         true
     }
 
-    fn standardise(&self, x: &[f32], z: &mut [f32]) {
-        for i in 0..self.features {
-            z[i] = (x[i] - self.mean[i]) / self.scale[i];
+    /// Standardises the first `features` values of every row of `xs` into the rows of `zs`.
+    fn standardise_rows(&self, xs: &[f32], stride: usize, zs: &mut [f32]) {
+        let d = self.features;
+        for (x, z) in xs.chunks_exact(stride).zip(zs.chunks_exact_mut(d)) {
+            for i in 0..d {
+                z[i] = (x[i] - self.mean[i]) / self.scale[i];
+            }
         }
     }
 
     /// Probabilities that each family is present, into `out` (one per family), using
-    /// `scratch` (at least `features + hidden` values). `x` is a [`PRESENCE_SCHEMA`] vector,
-    /// of which a model of an earlier schema reads the prefix it knows. Does not allocate.
+    /// `scratch` (at least [`PresenceModel::scratch_len`] values). `x` is a
+    /// [`PRESENCE_SCHEMA`] vector, of which a model of an earlier schema reads the prefix it
+    /// knows. Does not allocate.
     pub fn predict_into(&self, x: &[f32], scratch: &mut [f32], out: &mut [f32]) {
-        let (z, rest) = scratch.split_at_mut(self.features);
-        self.standardise(x, z);
-        let inputs: &[f32] = if self.hidden == 0 {
-            z
+        self.predict_many(x, x.len(), scratch, out, out.len());
+    }
+
+    /// [`PresenceModel::predict_into`] for every row of `xs` (rows of `stride` values): row
+    /// `r`'s probabilities go to `out[r * out_stride..]`; `scratch` holds at least
+    /// [`PresenceModel::scratch_len`] values per row. The same values, bit for bit, as one call
+    /// per row, but each weight and tree is read from memory once for all the rows, not once
+    /// per row. Does not allocate.
+    pub fn predict_many(
+        &self,
+        xs: &[f32],
+        stride: usize,
+        scratch: &mut [f32],
+        out: &mut [f32],
+        out_stride: usize,
+    ) {
+        let n = xs.len() / stride;
+        let (zs, rest) = scratch.split_at_mut(n * self.features);
+        self.standardise_rows(xs, stride, zs);
+        let (inputs, rest): (&[f32], &mut [f32]) = if self.hidden == 0 {
+            (zs, rest)
         } else {
-            let hbuf = &mut rest[..self.hidden];
-            affine(&self.w1, &self.b1, z, hbuf, true);
-            hbuf
+            let (hs, rest) = rest.split_at_mut(n * self.hidden);
+            affine(&self.w1, &self.b1, zs, hs, self.hidden, true);
+            (hs, rest)
         };
+        affine(&self.w2, &self.b2, inputs, out, out_stride, false);
         let families = self.b2.len();
-        let out = &mut out[..families];
-        affine(&self.w2, &self.b2, inputs, out, false);
-        for (f, o) in out.iter_mut().enumerate() {
-            *o = sigmoid(match &self.trees {
-                Some(t) => 0.5 * (*o + t.logit(f, x)),
-                None => *o,
-            });
+        match &self.trees {
+            Some(t) => {
+                let logits = &mut rest[..n];
+                for f in 0..families {
+                    t.logits_into(f, xs, stride, logits);
+                    for (o, &l) in out.chunks_mut(out_stride).zip(logits.iter()) {
+                        o[f] = sigmoid(0.5 * (o[f] + l));
+                    }
+                }
+            }
+            None => {
+                for o in out.chunks_mut(out_stride).take(n) {
+                    o[..families].iter_mut().for_each(|a| *a = sigmoid(*a));
+                }
+            }
         }
     }
 }
@@ -402,43 +451,99 @@ impl ShareNetwork {
 /// The largest exponent a share network may carry.
 pub const MAX_SHARE_EXPONENT: f32 = 4.0;
 
-/// One layer of a network: `out[j] = b[j] + w[j]·x`, then `max(0, ·)` with `relu`; `w`
-/// row-major `out.len() × x.len()`. Does not allocate.
+/// One layer of a network for every row `x` of `xs` (rows of `w.len() / b.len()` values):
+/// `o[j] = b[j] + w[j]·x`, then `max(0, ·)` with `relu`, into the row `o` of `outs` that
+/// starts at `r * out_stride`; `w` row-major `b.len() × x.len()`. Does not allocate.
 ///
 /// The layers' multiply-adds were the largest cost of the presence stage (one sum per weight:
-/// 0.7 M per column for the built-in palette's networks). On CPUs with AVX2 and FMA, or
-/// AVX-512 (x86-64-v3 or -v4, detected at run time), four rows are summed at a time in fused
-/// multiply-adds, each `x` value loaded once for the four ([`Affine`]); elsewhere one [`dot`]
-/// per row. The two round differently, in the last bits.
-fn affine(w: &[f32], b: &[f32], x: &[f32], out: &mut [f32], relu: bool) {
-    debug_assert_eq!(w.len(), out.len() * x.len());
+/// 0.7 M per column for the built-in palette's networks). Four weight rows at a time are
+/// applied to every input row before the next four, so the weights cross the memory bus once
+/// per call, not once per input row. On CPUs with AVX2 and FMA, or AVX-512 (x86-64-v3 or -v4,
+/// detected at run time), the four sums run in fused multiply-adds, each `x` value loaded once
+/// for the four ([`Affine`]); elsewhere one [`dot`] per sum. The two round differently, in the
+/// last bits; the number of rows never changes a row's result.
+fn affine(w: &[f32], b: &[f32], xs: &[f32], outs: &mut [f32], out_stride: usize, relu: bool) {
+    let d = w.len() / b.len().max(1);
+    debug_assert_eq!(w.len(), b.len() * d);
+    debug_assert!(b.len() <= out_stride && xs.len().is_multiple_of(d.max(1)));
     #[cfg(target_arch = "x86_64")]
     if let arch @ (pulp::Arch::V3(_) | pulp::Arch::V4(_)) = pulp::Arch::new() {
-        arch.dispatch(Affine { w, b, x, out, relu });
+        arch.dispatch(Affine {
+            w,
+            b,
+            xs,
+            outs,
+            out_stride,
+            relu,
+        });
         return;
     }
-    affine_portable(w, b, x, out, relu);
+    affine_portable(w, b, xs, outs, out_stride, relu);
 }
 
 /// [`affine`] in portable code.
-fn affine_portable(w: &[f32], b: &[f32], x: &[f32], out: &mut [f32], relu: bool) {
-    let d = x.len();
-    for (j, o) in out.iter_mut().enumerate() {
-        let v = b[j] + dot(&w[j * d..(j + 1) * d], x);
-        *o = if relu { v.max(0.0) } else { v };
+fn affine_portable(
+    w: &[f32],
+    b: &[f32],
+    xs: &[f32],
+    outs: &mut [f32],
+    out_stride: usize,
+    relu: bool,
+) {
+    let d = w.len() / b.len().max(1);
+    for (x, o) in xs.chunks_exact(d).zip(outs.chunks_mut(out_stride)) {
+        for (j, o) in o[..b.len()].iter_mut().enumerate() {
+            let v = b[j] + dot(&w[j * d..(j + 1) * d], x);
+            *o = if relu { v.max(0.0) } else { v };
+        }
     }
 }
 
-/// [`affine`] in explicit SIMD, generic over the instruction set (`pulp`): four rows at a time,
-/// two accumulators per row (eight independent fused multiply-add chains, enough to hide
-/// their latency), then the rows left over one at a time.
+/// [`affine`] in explicit SIMD, generic over the instruction set (`pulp`): four weight rows
+/// at a time, two accumulators per row (eight independent fused multiply-add chains, enough
+/// to hide their latency), then the weight rows left over one at a time.
 #[cfg(target_arch = "x86_64")]
 struct Affine<'a> {
     w: &'a [f32],
     b: &'a [f32],
-    x: &'a [f32],
-    out: &'a mut [f32],
+    xs: &'a [f32],
+    outs: &'a mut [f32],
+    out_stride: usize,
     relu: bool,
+}
+
+/// `Σ_i w_i·x_i` of `N` weight rows against one input row, in SIMD (see [`Affine`]).
+#[cfg(target_arch = "x86_64")]
+#[inline(always)]
+fn sums<S: pulp::Simd, const N: usize>(
+    simd: S,
+    w: [(&[S::f32s], &[f32]); N],
+    x: (&[S::f32s], &[f32]),
+) -> [f32; N] {
+    let (xv, xt) = x;
+    let n = xv.len();
+    let zero = simd.splat_f32s(0.0);
+    let mut acc = [[zero; 2]; N];
+    let mut i = 0;
+    while i + 2 <= n {
+        for (a, (r, _)) in acc.iter_mut().zip(&w) {
+            a[0] = simd.mul_add_e_f32s(r[i], xv[i], a[0]);
+            a[1] = simd.mul_add_e_f32s(r[i + 1], xv[i + 1], a[1]);
+        }
+        i += 2;
+    }
+    if i < n {
+        for (a, (r, _)) in acc.iter_mut().zip(&w) {
+            a[0] = simd.mul_add_e_f32s(r[i], xv[i], a[0]);
+        }
+    }
+    std::array::from_fn(|k| {
+        let mut sum = simd.reduce_sum_f32s(simd.add_f32s(acc[k][0], acc[k][1]));
+        for (&a, &c) in w[k].1.iter().zip(xt) {
+            sum += a * c;
+        }
+        sum
+    })
 }
 
 #[cfg(target_arch = "x86_64")]
@@ -447,58 +552,33 @@ impl pulp::WithSimd for Affine<'_> {
 
     #[inline(always)]
     fn with_simd<S: pulp::Simd>(self, simd: S) {
-        let Affine { w, b, x, out, relu } = self;
-        let d = x.len();
-        let (xv, xt) = S::as_simd_f32s(x);
-        let n = xv.len();
-        let zero = simd.splat_f32s(0.0);
+        let Affine {
+            w,
+            b,
+            xs,
+            outs,
+            out_stride,
+            relu,
+        } = self;
+        let d = w.len() / b.len().max(1);
         let finish = |v: f32| if relu { v.max(0.0) } else { v };
-        let mut rows = out.chunks_exact_mut(4);
+        let row = |j: usize| S::as_simd_f32s(&w[j * d..(j + 1) * d]);
         let mut j = 0;
-        for o in &mut rows {
-            let wv: [_; 4] =
-                std::array::from_fn(|k| S::as_simd_f32s(&w[(j + k) * d..(j + k + 1) * d]));
-            let mut acc = [[zero; 2]; 4];
-            let mut i = 0;
-            while i + 2 <= n {
-                for (a, (r, _)) in acc.iter_mut().zip(&wv) {
-                    a[0] = simd.mul_add_e_f32s(r[i], xv[i], a[0]);
-                    a[1] = simd.mul_add_e_f32s(r[i + 1], xv[i + 1], a[1]);
+        while j + 4 <= b.len() {
+            let wv: [_; 4] = std::array::from_fn(|k| row(j + k));
+            for (x, o) in xs.chunks_exact(d).zip(outs.chunks_mut(out_stride)) {
+                let s = sums(simd, wv, S::as_simd_f32s(x));
+                for k in 0..4 {
+                    o[j + k] = finish(b[j + k] + s[k]);
                 }
-                i += 2;
-            }
-            if i < n {
-                for (a, (r, _)) in acc.iter_mut().zip(&wv) {
-                    a[0] = simd.mul_add_e_f32s(r[i], xv[i], a[0]);
-                }
-            }
-            for (k, o) in o.iter_mut().enumerate() {
-                let mut sum = simd.reduce_sum_f32s(simd.add_f32s(acc[k][0], acc[k][1]));
-                for (&a, &c) in wv[k].1.iter().zip(xt) {
-                    sum += a * c;
-                }
-                *o = finish(b[j + k] + sum);
             }
             j += 4;
         }
-        for o in rows.into_remainder() {
-            let (r, rt) = S::as_simd_f32s(&w[j * d..(j + 1) * d]);
-            let mut acc = [zero; 2];
-            let mut i = 0;
-            while i + 2 <= n {
-                acc[0] = simd.mul_add_e_f32s(r[i], xv[i], acc[0]);
-                acc[1] = simd.mul_add_e_f32s(r[i + 1], xv[i + 1], acc[1]);
-                i += 2;
+        for j in j..b.len() {
+            let wv = [row(j)];
+            for (x, o) in xs.chunks_exact(d).zip(outs.chunks_mut(out_stride)) {
+                o[j] = finish(b[j] + sums(simd, wv, S::as_simd_f32s(x))[0]);
             }
-            if i < n {
-                acc[0] = simd.mul_add_e_f32s(r[i], xv[i], acc[0]);
-            }
-            let mut sum = simd.reduce_sum_f32s(simd.add_f32s(acc[0], acc[1]));
-            for (&a, &c) in rt.iter().zip(xt) {
-                sum += a * c;
-            }
-            *o = finish(b[j] + sum);
-            j += 1;
         }
     }
 }
@@ -1204,11 +1284,12 @@ fn forward(p: &Params, x: &[f32], d: usize, hidden: usize, hbuf: &mut [f32], out
             &p.b1[..hidden],
             x,
             &mut hbuf[..hidden],
+            hidden,
             true,
         );
         hbuf
     };
-    affine(&p.w2, &p.b2, inputs, out, false);
+    affine(&p.w2, &p.b2, inputs, out, out.len(), false);
 }
 
 #[derive(Clone)]
@@ -1801,45 +1882,120 @@ mod tests {
 
     #[test]
     fn a_layer_sums_like_its_plain_form_at_every_size() {
-        // Row counts around the group of four, lengths around the SIMD widths (8 and 16
-        // lanes) and the built-in palette's 662 features; seeded values of both signs.
+        // Weight rows around the group of four, lengths around the SIMD widths (8 and 16
+        // lanes) and the built-in palette's 662 features, one to three input rows written
+        // into wider output rows; seeded values of both signs.
         let mut rng = SceneRng::new(31);
         for rows in [1, 3, 4, 5, 8, 11, 16] {
             for d in [1, 5, 8, 9, 16, 31, 33, 662] {
                 let w: Vec<f32> = (0..rows * d).map(|_| rng.unit() as f32 - 0.5).collect();
                 let b: Vec<f32> = (0..rows).map(|_| rng.unit() as f32 - 0.5).collect();
-                let x: Vec<f32> = (0..d).map(|_| 2.0 * rng.unit() as f32 - 1.0).collect();
-                for relu in [false, true] {
-                    let mut got = vec![f32::NAN; rows];
-                    let mut plain = vec![f32::NAN; rows];
-                    affine(&w, &b, &x, &mut got, relu);
-                    affine_portable(&w, &b, &x, &mut plain, relu);
-                    for j in 0..rows {
-                        // Exact sum in f64, and its size: rounding is relative to Σ|w·x|.
-                        let row = &w[j * d..(j + 1) * d];
-                        let exact: f64 = f64::from(b[j])
-                            + row
-                                .iter()
-                                .zip(&x)
-                                .map(|(&a, &c)| f64::from(a) * f64::from(c))
-                                .sum::<f64>();
-                        let exact = if relu { exact.max(0.0) } else { exact };
-                        let scale = 1.0
-                            + row
-                                .iter()
-                                .zip(&x)
-                                .map(|(&a, &c)| f64::from(a * c).abs())
-                                .sum::<f64>();
-                        for (name, v) in [("simd", got[j]), ("portable", plain[j])] {
-                            let err = (f64::from(v) - exact).abs() / scale;
-                            assert!(err < 1e-6, "{name} rows {rows} d {d} row {j}: {err}");
-                        }
-                        if relu {
-                            assert!(got[j] >= 0.0);
+                for inputs in [1, 3] {
+                    let xs: Vec<f32> = (0..inputs * d)
+                        .map(|_| 2.0 * rng.unit() as f32 - 1.0)
+                        .collect();
+                    let stride = rows + 2;
+                    for relu in [false, true] {
+                        let mut got = vec![f32::NAN; inputs * stride];
+                        let mut plain = vec![f32::NAN; inputs * stride];
+                        affine(&w, &b, &xs, &mut got, stride, relu);
+                        affine_portable(&w, &b, &xs, &mut plain, stride, relu);
+                        for (r, x) in xs.chunks_exact(d).enumerate() {
+                            for j in 0..rows {
+                                // The exact sum in f64; rounding is relative to Σ|w·x|.
+                                let row = &w[j * d..(j + 1) * d];
+                                let terms = row.iter().zip(x).map(|(&a, &c)| f64::from(a * c));
+                                let exact = f64::from(b[j])
+                                    + row
+                                        .iter()
+                                        .zip(x)
+                                        .map(|(&a, &c)| f64::from(a) * f64::from(c))
+                                        .sum::<f64>();
+                                let exact = if relu { exact.max(0.0) } else { exact };
+                                let scale = 1.0 + terms.map(f64::abs).sum::<f64>();
+                                for (name, v) in [("simd", &got), ("portable", &plain)] {
+                                    let v = v[r * stride + j];
+                                    let err = (f64::from(v) - exact).abs() / scale;
+                                    assert!(err < 1e-6, "{name} rows {rows} d {d} {r}/{j}: {err}");
+                                    assert!(!relu || v >= 0.0);
+                                }
+                            }
+                            // The padding of each output row is left alone.
+                            assert!(
+                                got[r * stride + rows..(r + 1) * stride]
+                                    .iter()
+                                    .all(|v| v.is_nan())
+                            );
                         }
                     }
                 }
             }
+        }
+    }
+
+    #[test]
+    fn rows_taken_together_give_the_single_row_values_bit_for_bit() {
+        // A model with a hidden layer, boosted trees and a direct share network, on rows of
+        // 2 features padded to a longer stride (as the estimator's rows are).
+        let (n, d, families, stride) = (1500, 2, 3, 5);
+        let (rows, shares) = share_rows(12, n);
+        let labels: Vec<bool> = shares.iter().map(|&s| s >= 0.2).collect();
+        let opts = PresenceTraining {
+            hidden: 6,
+            epochs: 3,
+            seed: 5,
+            shares: ShareTraining {
+                hidden: 7,
+                epochs: 3,
+                ..ShareTraining::default()
+            },
+            trees: TreeTraining {
+                trees: 11,
+                depth: 3,
+                ..TreeTraining::default()
+            },
+            ..PresenceTraining::default()
+        };
+        let mut model = train_presence(&rows, d, &labels, families, &opts);
+        let (net, _) = train_share_network(&rows, &shares, &model, &opts).expect("trained");
+        model.shares = Some(net);
+        assert!(model.trees.is_some() && model.hidden == 6);
+        let xs: Vec<f32> = rows[..2 * 40]
+            .chunks_exact(d)
+            .flat_map(|r| [r[0], r[1], 9.0, -9.0, 0.5])
+            .collect();
+        // One row at a time, as the live estimator computes them.
+        let mut scratch = vec![f32::NAN; 40 * model.scratch_len()];
+        let mut want_p = Vec::new();
+        let mut want_s = Vec::new();
+        for x in xs.chunks_exact(stride) {
+            let mut o = [f32::NAN; 3];
+            model.predict_into(x, &mut scratch, &mut o);
+            want_p.extend(o);
+            assert!(model.shares_into(x, &mut scratch, &mut o));
+            want_s.extend(o);
+        }
+        let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+        // Output rows wider than the families, as the estimator's are.
+        let out_stride = 4;
+        for batch in [2, 7, 8, 9, 16, 17, 40] {
+            let mut got_p = Vec::new();
+            let mut got_s = Vec::new();
+            for chunk in xs.chunks(batch * stride) {
+                let rows_here = chunk.len() / stride;
+                let mut out = vec![f32::NAN; rows_here * out_stride];
+                model.predict_many(chunk, stride, &mut scratch, &mut out, out_stride);
+                got_p.extend(out.chunks(out_stride).flat_map(|o| o[..families].to_vec()));
+                assert!(model.shares_many(chunk, stride, &mut scratch, &mut out, out_stride));
+                got_s.extend(out.chunks(out_stride).flat_map(|o| o[..families].to_vec()));
+            }
+            assert_eq!(bits(&got_p), bits(&want_p), "presence, batch {batch}");
+            assert_eq!(bits(&got_s), bits(&want_s), "shares, batch {batch}");
+        }
+        // And the values are probabilities and shares.
+        assert!(want_p.iter().all(|p| (0.0..=1.0).contains(p)));
+        for s in want_s.chunks(families) {
+            assert!((s.iter().sum::<f32>() - 1.0).abs() < 1e-5);
         }
     }
 
