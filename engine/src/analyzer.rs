@@ -10,7 +10,10 @@
 //!   (no whole-clip `top_db` floor; see [`crate::timbre`]).
 //! - **Family shares**: an analyzer built with [`Analyzer::with_palette`] also feeds every
 //!   frame's power spectrum (the same FFT the descriptors use) to a [`SharesEstimator`]; each
-//!   [`FrameResult`] carries the latest shares ([`FrameShares`]).
+//!   [`FrameResult`] carries the latest shares ([`FrameShares`]). The presence stage decides
+//!   the columns of one block together (see [`SharesEstimator::flush`]), so with a palette the
+//!   frames of a block come out together at the end of the call that completed them; the
+//!   values are the same for any block size.
 //! - **Offline, equal to librosa**: [`Analyzer::analyze_clip`] takes the whole clip and returns
 //!   every frame with librosa's whole-clip floor applied (what `weft analyze --frames` prints).
 //!
@@ -20,7 +23,7 @@
 use crate::frames::{FrameConfig, Framer, FramingError};
 use crate::level::Level;
 use crate::palette::Palette;
-use crate::shares::{Shares, SharesError, SharesEstimator, SharesSettings};
+use crate::shares::{MAX_BATCH, Shares, SharesError, SharesEstimator, SharesSettings};
 use crate::timbre::{Descriptors, FloorRecord, Timbre, TimbreError, TimbreOptions};
 use thiserror::Error;
 
@@ -130,6 +133,18 @@ pub struct Analyzer {
     /// Whether [`Analyzer::finish`] is feeding the trailing centre padding.
     finishing: bool,
     result: FrameResult,
+    /// With a palette: the frames measured since the estimator's last flush, held back until
+    /// their columns' shares are known (capacity reserved in [`Analyzer::with_palette`]).
+    held: Vec<HeldFrame>,
+}
+
+/// A frame waiting for the shares of the columns before it.
+#[derive(Debug, Clone, Copy)]
+struct HeldFrame {
+    result: FrameResult,
+    floor: FloorRecord,
+    /// Whether a column completed on this frame.
+    column: bool,
 }
 
 impl Analyzer {
@@ -150,6 +165,7 @@ impl Analyzer {
             samples_in: 0,
             finishing: false,
             result: FrameResult::default(),
+            held: Vec::new(),
         }
     }
 
@@ -169,6 +185,8 @@ impl Analyzer {
         let estimator =
             SharesEstimator::new(palette, shares, settings.sample_rate_hz, settings.framing)?;
         let mut analyzer = Self::new(settings);
+        // Every frame of a full batch of columns, and the frame that fills it.
+        analyzer.held = Vec::with_capacity(MAX_BATCH * estimator.hops_per_column() + 1);
         analyzer.shares = Some(estimator);
         Ok(analyzer)
     }
@@ -207,6 +225,7 @@ impl Analyzer {
             est.reset();
         }
         self.result.shares = FrameShares::default();
+        self.held.clear();
         self.frames_done = 0;
         self.samples_in = 0;
         self.finishing = false;
@@ -253,6 +272,7 @@ impl Analyzer {
                 self.emit(on_frame);
             }
         }
+        self.release(on_frame);
     }
 
     /// Completes a whole clip: feeds the trailing centre padding (librosa's `center=True`) and
@@ -273,6 +293,7 @@ impl Analyzer {
                 self.emit(on_frame);
             }
         }
+        self.release(on_frame);
     }
 
     /// Analyses a whole clip offline, exactly as librosa 0.11.0 does (see [`crate::timbre`] for
@@ -302,13 +323,70 @@ impl Analyzer {
     }
 
     fn emit(&mut self, on_frame: &mut impl FnMut(&FrameResult, &FloorRecord)) {
-        self.measure();
-        on_frame(&self.result, self.timbre.floor_record());
+        let column = self.measure();
+        match &self.shares {
+            None => on_frame(&self.result, self.timbre.floor_record()),
+            Some(est) => {
+                self.held.push(HeldFrame {
+                    result: self.result,
+                    floor: *self.timbre.floor_record(),
+                    column,
+                });
+                if est.is_full() || self.held.len() == self.held.capacity() {
+                    self.release(on_frame);
+                }
+            }
+        }
         self.mid.advance();
         self.side.advance();
     }
 
-    fn measure(&mut self) {
+    /// Completes the estimator's waiting columns, gives each held frame the shares of the
+    /// latest column up to it, and hands the frames out in order.
+    fn release(&mut self, on_frame: &mut impl FnMut(&FrameResult, &FloorRecord)) {
+        let Some(est) = &mut self.shares else {
+            return;
+        };
+        let held = &mut self.held;
+        let mut next = 0;
+        est.flush(|u| {
+            // `push_power` queued one column per frame marked `column`, in order.
+            while let Some(h) = held.get(next)
+                && !h.column
+            {
+                next += 1;
+            }
+            if let Some(h) = held.get_mut(next) {
+                h.result.shares = FrameShares {
+                    updated: true,
+                    raw: u.raw,
+                    smoothed: u.smoothed,
+                };
+                next += 1;
+            }
+        });
+        let mut latest = self.result.shares;
+        for h in held.iter_mut() {
+            if h.column {
+                latest = h.result.shares;
+            } else {
+                h.result.shares = FrameShares {
+                    updated: false,
+                    ..latest
+                };
+            }
+            on_frame(&h.result, &h.floor);
+        }
+        self.result.shares = FrameShares {
+            updated: false,
+            ..latest
+        };
+        held.clear();
+    }
+
+    /// Measures the current frame into `self.result` (its shares are filled in by
+    /// [`Analyzer::release`] when a palette is used); returns whether a column completed.
+    fn measure(&mut self) -> bool {
         let index = self.frames_done;
         let signal = self
             .settings
@@ -316,21 +394,16 @@ impl Analyzer {
             .signal_range(self.frames_done, self.finishing.then_some(self.samples_in));
         self.timbre
             .describe(self.mid.frame(), signal, &mut self.result.descriptors);
-        self.result.shares.updated = false;
-        if let Some(est) = &mut self.shares
-            && let Some(update) = est.process_power(self.timbre.power())
-        {
-            self.result.shares = FrameShares {
-                updated: true,
-                raw: update.raw,
-                smoothed: update.smoothed,
-            };
-        }
+        let column = self
+            .shares
+            .as_mut()
+            .is_some_and(|est| est.push_power(self.timbre.power()));
         self.frames_done += 1;
         self.result.index = index;
         self.result.time_s =
             (index * self.settings.framing.hop_len as u64) as f64 / self.settings.sample_rate_hz;
         self.result.level = Level::measure(self.mid.frame(), self.side.frame());
+        column
     }
 }
 
@@ -484,25 +557,45 @@ mod tests {
         tracker.process(&x, |u| expected.push((u.raw, u.smoothed)));
         tracker.finish(|u| expected.push((u.raw, u.smoothed)));
         assert!(expected.len() > 10, "{} columns", expected.len());
+        // More columns than one batch holds (`MAX_BATCH`), so the whole-signal block completes
+        // a full batch and then a partial one; the small blocks complete a column or two each.
+        assert!(expected.len() > MAX_BATCH + 1, "{} columns", expected.len());
         let mut reference = Vec::new();
+        let mut reference_frames = Vec::new();
         for block in [x.len(), 1, 333, 4096] {
             let mut got = Vec::new();
-            for chunk in x.chunks(block) {
-                analyzer.process(chunk, None, |f| {
-                    if f.shares.updated {
-                        got.push((f.shares.raw, f.shares.smoothed));
-                    }
-                });
-            }
-            analyzer.finish(|f| {
+            let mut frames = Vec::new();
+            let mut on_frame = |f: &FrameResult| {
                 if f.shares.updated {
                     got.push((f.shares.raw, f.shares.smoothed));
                 }
-            });
+                frames.push(*f);
+            };
+            for chunk in x.chunks(block) {
+                analyzer.process(chunk, None, &mut on_frame);
+            }
+            analyzer.finish(&mut on_frame);
             analyzer.reset();
             assert_eq!(got, expected, "block {block}");
+            // Every frame, those between columns included, whatever the block size.
+            assert_eq!(frames.len(), 1 + x.len() / settings.framing.hop_len);
             if reference.is_empty() {
                 reference = got;
+                reference_frames = frames;
+            } else {
+                assert!(frames == reference_frames, "frames, block {block}");
+            }
+        }
+        // A frame between columns carries the latest column's values, marked as not new.
+        let mut latest = FrameShares::default();
+        for f in &reference_frames {
+            if f.shares.updated {
+                latest = f.shares;
+            } else {
+                assert_eq!(
+                    (f.shares.raw, f.shares.smoothed),
+                    (latest.raw, latest.smoothed)
+                );
             }
         }
         let (raw, _) = reference.last().expect("columns");
@@ -518,13 +611,17 @@ mod tests {
         let mut analyzer =
             Analyzer::with_palette(settings, &palette, SharesSettings::default()).expect("palette");
         let x = shares_signal();
-        let mut updates = 0;
-        assert_no_alloc::assert_no_alloc(|| {
-            for block in x.chunks(333) {
-                analyzer.process(block, None, |f| updates += usize::from(f.shares.updated));
-            }
-            analyzer.finish(|f| updates += usize::from(f.shares.updated));
-        });
-        assert!(updates > 10, "{updates} updates");
+        // Small blocks, then the whole signal at once (full batches of columns).
+        for block in [333, x.len()] {
+            let mut updates = 0;
+            assert_no_alloc::assert_no_alloc(|| {
+                for chunk in x.chunks(block) {
+                    analyzer.process(chunk, None, |f| updates += usize::from(f.shares.updated));
+                }
+                analyzer.finish(|f| updates += usize::from(f.shares.updated));
+            });
+            assert!(updates > MAX_BATCH, "{updates} updates, block {block}");
+            analyzer.reset();
+        }
     }
 }

@@ -20,8 +20,15 @@
 //! 6. smoothing: an energy-weighted exponential average with the response time
 //!    (`s̄ = EMA(E·s) / EMA(E)`, `E` the column energy), which is unchanged by any gain.
 //!
-//! The same code runs live and offline: the plugin's analysis thread feeds frames as they come,
-//! the command-line tool feeds a whole file, and neither allocates per frame.
+//! Step 2 of a column needs the column before (its fit starts from that one's), so it runs as
+//! each column completes; steps 3–6 need only the column's own step 2, so completed columns
+//! wait in a batch (at most [`MAX_BATCH`]) until [`SharesEstimator::flush`]: the presence
+//! model then reads its weights and trees once for the whole batch instead of once per column,
+//! which costs less, and gives the same values bit for bit.
+//!
+//! The same code runs live and offline: the plugin's analysis thread feeds frames as they come
+//! (a batch holds the column or two of one block), the command-line tool feeds a whole file in
+//! long blocks, and neither allocates per frame.
 
 use super::columns::ColumnStream;
 use super::fine::{FINE_VALUES, FineSpectrum};
@@ -52,6 +59,11 @@ pub const ONSET_RISE_FRACTION: f32 = 0.5;
 /// 50.9 %; 0.005 → about 20, 51.2 %; 0.01 → 15, 51.8 %, presence F1 down 0.01 (30 updates
 /// always, no restarts: 51.6 %).
 pub const SOLVE_TOLERANCE: f32 = 0.005;
+
+/// Columns the estimator holds between their first stage and the rest (see
+/// [`SharesEstimator::push_power`]): enough that the presence model's weights and trees, read
+/// once per batch, cost little per column; 1.6 s of audio at the default 50 ms columns.
+pub const MAX_BATCH: usize = 32;
 
 /// Why a shares estimator could not be built.
 #[derive(Debug, Clone, PartialEq, Error)]
@@ -188,7 +200,6 @@ pub struct SharesEstimator {
     h_amount: Vec<f32>,
     all_active: Vec<bool>,
     active: Vec<bool>,
-    scratch: Vec<f32>,
     fam_energy: Vec<f32>,
     ema_num: [f64; MAX_FAMILIES],
     ema_unexplained: f64,
@@ -197,6 +208,41 @@ pub struct SharesEstimator {
     prev_column: Vec<f32>,
     cold_starts: u64,
     solved_columns: u64,
+    batch: Batch,
+}
+
+/// Columns past their first stage (NMF alone), waiting for presence and amount. The first
+/// stage of a column needs the one before (its fit starts from the last), so it runs as each
+/// column completes; the rest of a column needs only that column's first stage, so it waits
+/// until [`SharesEstimator::flush`] decides presence for all waiting columns at once.
+#[derive(Debug, Clone)]
+struct Batch {
+    columns: Vec<Waiting>,
+    /// Columns with a signal, each with a row in the arrays below.
+    rows: usize,
+    /// Stacked band energies per row.
+    stacked: Vec<f32>,
+    /// First-stage activations per row.
+    h_full: Vec<f32>,
+    /// Presence features per row (only when a presence model will read them).
+    features: Vec<f32>,
+    feature_len: usize,
+    /// Presence probabilities and the share network's estimate per row, [`MAX_FAMILIES`]
+    /// apart.
+    presence: Vec<f32>,
+    direct: Vec<f32>,
+    scratch: Vec<f32>,
+}
+
+/// A column whose presence and amount stages wait.
+#[derive(Debug, Clone, Copy)]
+struct Waiting {
+    time_s: f64,
+    /// The stacked column's energy.
+    total: f32,
+    nmf_alone: Shares,
+    /// Its row in [`Batch`]; `None` for a column with no signal.
+    row: Option<usize>,
 }
 
 impl SharesEstimator {
@@ -229,6 +275,12 @@ impl SharesEstimator {
             .max(1.0) as usize;
         let model = palette.presence().cloned();
         let scratch_len = model.as_ref().map_or(0, PresenceModel::scratch_len);
+        let mut context = PresenceContext::new(families, dict.atoms(), context_len);
+        let feature_len = if model.is_some() {
+            context.features().len()
+        } else {
+            0
+        };
         // One-sided Hann-windowed power of a sine of RMS σ sums to 0.1875·n²·σ² (Parseval with
         // the Hann window's mean square 3/8, half of it on the positive side).
         let n = framing.frame_len as f64;
@@ -250,7 +302,7 @@ impl SharesEstimator {
             section_of,
             sections: palette.sections().len().min(MAX_SECTIONS),
             tolerance: spec.unexplained_tolerance as f32,
-            context: PresenceContext::new(families, atoms, context_len),
+            context,
             fine: FineSpectrum::new(framing.frame_len / 2 + 1, sample_rate_hz),
             fine_values: [0.0; FINE_VALUES],
             model,
@@ -263,7 +315,6 @@ impl SharesEstimator {
             h_amount: vec![0.0; atoms],
             all_active: vec![true; atoms],
             active: vec![false; atoms],
-            scratch: vec![0.0; scratch_len],
             fam_energy: vec![0.0; families],
             ema_num: [0.0; MAX_FAMILIES],
             ema_unexplained: 0.0,
@@ -272,6 +323,17 @@ impl SharesEstimator {
             prev_column: vec![0.0; spec.bands],
             cold_starts: 0,
             solved_columns: 0,
+            batch: Batch {
+                columns: Vec::with_capacity(MAX_BATCH),
+                rows: 0,
+                stacked: vec![0.0; MAX_BATCH * dims],
+                h_full: vec![0.0; MAX_BATCH * atoms],
+                features: vec![0.0; MAX_BATCH * feature_len],
+                feature_len,
+                presence: vec![0.0; MAX_BATCH * MAX_FAMILIES],
+                direct: vec![0.0; MAX_BATCH * MAX_FAMILIES],
+                scratch: vec![0.0; MAX_BATCH * scratch_len],
+            },
         };
         est.set_response_ms(settings.response_ms)?;
         Ok(est)
@@ -337,6 +399,8 @@ impl SharesEstimator {
         self.ema_den = 0.0;
         self.update = SharesUpdate::default();
         self.prev_column.fill(0.0);
+        self.batch.columns.clear();
+        self.batch.rows = 0;
     }
 
     /// Mean multiplicative updates per activation solve so far (both stages; at most the
@@ -392,15 +456,90 @@ impl SharesEstimator {
     }
 
     /// Feeds one frame's one-sided power spectrum; returns the update when a column completed.
-    /// Does not allocate.
+    /// Does not allocate. The same as [`SharesEstimator::push_power`] followed by
+    /// [`SharesEstimator::flush`] (a batch of one column).
     pub fn process_power(&mut self, power: &[f32]) -> Option<&SharesUpdate> {
-        self.fine.add(power);
-        if !self.columns.push_power(power) {
+        if !self.push_power(power) {
             return None;
         }
-        self.fine.finish_column(&mut self.fine_values);
-        self.estimate();
+        self.flush(|_| {});
         Some(&self.update)
+    }
+
+    /// Feeds one frame's one-sided power spectrum; returns whether a column completed. A
+    /// completed column's update waits for [`SharesEstimator::flush`], which a caller must
+    /// call once [`SharesEstimator::is_full`] (and whenever it wants the updates so far).
+    /// Results do not depend on when it flushes. Does not allocate.
+    pub fn push_power(&mut self, power: &[f32]) -> bool {
+        self.fine.add(power);
+        if !self.columns.push_power(power) {
+            return false;
+        }
+        if self.is_full() {
+            // A caller that forgot to flush loses these updates, never the estimator's state.
+            debug_assert!(false, "push_power on a full batch");
+            self.flush(|_| {});
+        }
+        self.fine.finish_column(&mut self.fine_values);
+        self.first_stage();
+        true
+    }
+
+    /// Columns waiting for [`SharesEstimator::flush`].
+    pub fn waiting(&self) -> usize {
+        self.batch.columns.len()
+    }
+
+    /// Whether [`MAX_BATCH`] columns wait: flush before the next column completes.
+    pub fn is_full(&self) -> bool {
+        self.batch.columns.len() >= MAX_BATCH
+    }
+
+    /// Frames (hops) per column, so a caller can size what it holds back while columns wait.
+    pub fn hops_per_column(&self) -> usize {
+        self.columns.hops_per_column()
+    }
+
+    /// Completes the waiting columns in order: presence for all of them at once, then each
+    /// one's amount and smoothing; calls `on_update` for each (afterwards
+    /// [`SharesEstimator::last`] is the newest). Does not allocate.
+    pub fn flush(&mut self, mut on_update: impl FnMut(&SharesUpdate)) {
+        let rows = self.batch.rows;
+        let fl = self.batch.feature_len;
+        let mut use_direct = false;
+        if rows > 0
+            && let Some(model) = &self.model
+        {
+            let b = &mut self.batch;
+            let xs = &b.features[..rows * fl];
+            let direct = &mut b.direct[..rows * MAX_FAMILIES];
+            match self.mode {
+                SharesMode::TwoStage => {
+                    let presence = &mut b.presence[..rows * MAX_FAMILIES];
+                    model.predict_many(xs, fl, &mut b.scratch, presence, MAX_FAMILIES);
+                    use_direct = model.shares_many(xs, fl, &mut b.scratch, direct, MAX_FAMILIES);
+                }
+                SharesMode::KnownPresence => {
+                    use_direct = model.shares_many(xs, fl, &mut b.scratch, direct, MAX_FAMILIES);
+                }
+                SharesMode::NmfAlone => {}
+            }
+        }
+        for i in 0..self.batch.columns.len() {
+            let column = self.batch.columns[i];
+            match column.row {
+                Some(row) => self.second_stage(&column, row, use_direct),
+                None => {
+                    self.update = SharesUpdate {
+                        time_s: column.time_s,
+                        ..SharesUpdate::default()
+                    };
+                }
+            }
+            on_update(&self.update);
+        }
+        self.batch.columns.clear();
+        self.batch.rows = 0;
     }
 
     fn family_energies(&mut self, from_amount: bool) -> f32 {
@@ -468,7 +607,8 @@ impl SharesEstimator {
         s
     }
 
-    fn estimate(&mut self) {
+    /// The newest column's first stage (NMF alone) and presence features, kept in the batch.
+    fn first_stage(&mut self) {
         let onset = self.onset();
         let time_s = self.columns.stacked_centre_s();
         let total: f32 = self.columns.stacked().iter().sum();
@@ -484,16 +624,14 @@ impl SharesEstimator {
                 0.0,
                 &self.fine_values,
             );
-            self.update.time_s = time_s;
-            self.update.energy = 0.0;
-            self.update.raw = Shares::default();
-            self.update.smoothed = Shares::default();
-            self.update.nmf_alone = Shares::default();
-            self.update.presence = [0.0; MAX_FAMILIES];
-            self.update.present = [false; MAX_FAMILIES];
+            self.batch.columns.push(Waiting {
+                time_s,
+                total: 0.0,
+                nmf_alone: Shares::default(),
+                row: None,
+            });
             return;
         }
-        // Stage 0: NMF alone.
         // A column that starts a new sound starts from scratch, so the fit keeps nothing of
         // what came before it; the others start from the previous column's fit.
         let start = if onset {
@@ -521,17 +659,38 @@ impl SharesEstimator {
             residual_full * total,
             &self.fine_values,
         );
-        // Stage 1: presence.
+        let row = self.batch.rows;
+        let b = &mut self.batch;
+        let (dims, atoms) = (self.dict.dims(), self.h_full.len());
+        b.stacked[row * dims..(row + 1) * dims].copy_from_slice(self.columns.stacked());
+        b.h_full[row * atoms..(row + 1) * atoms].copy_from_slice(&self.h_full);
+        if self.mode != SharesMode::NmfAlone && b.feature_len > 0 {
+            let fl = b.feature_len;
+            b.features[row * fl..(row + 1) * fl].copy_from_slice(self.context.features());
+        }
+        b.rows += 1;
+        b.columns.push(Waiting {
+            time_s,
+            total,
+            nmf_alone,
+            row: Some(row),
+        });
+    }
+
+    /// Presence decisions, amount and smoothing of a waiting column with a signal (its
+    /// presence model outputs already in the batch), into [`SharesEstimator::last`].
+    fn second_stage(&mut self, column: &Waiting, row: usize, use_direct: bool) {
+        let total = column.total;
+        let at = row * MAX_FAMILIES;
         let mut presence = [0.0_f32; MAX_FAMILIES];
         let mut present = [false; MAX_FAMILIES];
         let mut direct = [0.0_f32; MAX_FAMILIES];
-        let mut use_direct = false;
+        direct.copy_from_slice(&self.batch.direct[at..at + MAX_FAMILIES]);
         let use_model = self.mode == SharesMode::TwoStage && self.model.is_some();
         match (self.mode, &self.model) {
             (SharesMode::TwoStage, Some(model)) => {
-                let x = self.context.features();
-                model.predict_into(x, &mut self.scratch, &mut presence[..self.families]);
-                use_direct = model.shares_into(x, &mut self.scratch, &mut direct);
+                presence[..self.families]
+                    .copy_from_slice(&self.batch.presence[at..at + self.families]);
                 let net = model.shares.as_ref().filter(|_| use_direct);
                 let mut any = false;
                 for f in 0..self.families {
@@ -546,15 +705,10 @@ impl SharesEstimator {
                     present[best] = true;
                 }
             }
-            (SharesMode::KnownPresence, model) => {
+            (SharesMode::KnownPresence, _) => {
                 present[..self.families].copy_from_slice(&self.known[..self.families]);
                 for f in 0..self.families {
                     presence[f] = if present[f] { 1.0 } else { 0.0 };
-                }
-                // The product's amount stage includes the network's blend.
-                if let Some(model) = model {
-                    let x = self.context.features();
-                    use_direct = model.shares_into(x, &mut self.scratch, &mut direct);
                 }
             }
             _ => {
@@ -567,22 +721,26 @@ impl SharesEstimator {
             for (a, &f) in self.active.iter_mut().zip(&self.family_of_atom) {
                 *a = present[f];
             }
-            self.h_amount.copy_from_slice(&self.h_full);
+            let atoms = self.h_amount.len();
+            self.h_amount
+                .copy_from_slice(&self.batch.h_full[row * atoms..(row + 1) * atoms]);
+            let dims = self.dict.dims();
+            let stacked = &self.batch.stacked[row * dims..(row + 1) * dims];
             self.solver.solve(
                 &self.dict,
-                self.columns.stacked(),
+                stacked,
                 &mut self.h_amount,
                 &self.active,
                 Start::Warm,
             );
-            let residual = self.residual_fraction(self.columns.stacked(), total);
+            let residual = self.residual_fraction(stacked, total);
             let mut explained = self.family_energies(true);
             if use_direct {
                 explained = self.blend_direct(&direct, explained);
             }
             self.shares_from(explained, residual)
         } else {
-            nmf_alone
+            column.nmf_alone
         };
         // Smoothing, weighted by energy.
         let a = self.alpha;
@@ -606,11 +764,11 @@ impl SharesEstimator {
             smoothed.unexplained = (self.ema_unexplained / self.ema_den * k) as f32;
         }
         self.update = SharesUpdate {
-            time_s,
+            time_s: column.time_s,
             energy: total,
             raw,
             smoothed,
-            nmf_alone,
+            nmf_alone: column.nmf_alone,
             presence,
             present,
         };
@@ -629,6 +787,7 @@ mod tests {
         PresenceTraining, ShareTraining, feature_count, train_presence, train_share_network,
     };
     use crate::shares::tracker::SharesTracker;
+    use crate::shares::trees::TreeTraining;
     use std::f64::consts::TAU;
 
     const SR: f64 = 48_000.0;
@@ -739,9 +898,16 @@ mod tests {
                 batch: 32,
                 ..ShareTraining::default()
             },
+            // Enough trees that a batch walks them by groups of rows (see `logits_into`).
+            trees: TreeTraining {
+                trees: 10,
+                depth: 3,
+                ..TreeTraining::default()
+            },
             ..PresenceTraining::default()
         };
         let mut model = train_presence(&rows, feature_count(3, 12), &labels, 3, &opts);
+        assert!(model.trees.as_ref().is_some_and(|t| t.trees > 0));
         model.shares = train_share_network(&rows, &shares, &model, &opts).map(|(net, _)| net);
         assert!(model.shares.is_some());
         palette.with_presence(Some(model)).expect("valid")

@@ -21,8 +21,9 @@ pub mod trees;
 
 pub use columns::ColumnStream;
 pub use estimator::{
-    DEFAULT_RESPONSE_MS, MAX_RESPONSE_MS, NO_SIGNAL_DB, ONSET_RISE_FRACTION, SOLVE_TOLERANCE,
-    Shares, SharesError, SharesEstimator, SharesMode, SharesSettings, SharesUpdate,
+    DEFAULT_RESPONSE_MS, MAX_BATCH, MAX_RESPONSE_MS, NO_SIGNAL_DB, ONSET_RISE_FRACTION,
+    SOLVE_TOLERANCE, Shares, SharesError, SharesEstimator, SharesMode, SharesSettings,
+    SharesUpdate,
 };
 pub use presence::{
     DEFAULT_SHARE_ADMIT, PresenceModel, PresenceTraining, ShareNetwork, ShareTraining,

@@ -49,20 +49,46 @@ impl SharesTracker {
         self.estimator.reset();
     }
 
-    /// Analyses a block of any size and calls `on_update` for every column completed.
-    /// Does not allocate.
+    /// Analyses a block of any size and calls `on_update` for every column completed (the
+    /// columns of one block are completed together, see [`SharesEstimator::flush`]; the
+    /// values do not depend on the block size). Does not allocate.
     pub fn process(&mut self, mid: &[f32], mut on_update: impl FnMut(&SharesUpdate)) {
-        self.process_each(mid, |e| on_update(e.last()));
+        let mut i = 0;
+        while i < mid.len() {
+            let (used, ready) = self.framer.feed(&mid[i..]);
+            i += used;
+            if ready {
+                self.push_frame(&mut on_update);
+            }
+        }
+        self.estimator.flush(on_update);
     }
 
     /// Completes a whole clip (the trailing centre padding), reporting the last updates.
     pub fn finish(&mut self, mut on_update: impl FnMut(&SharesUpdate)) {
-        self.finish_each(|e| on_update(e.last()));
+        let mut left = self.framer.tail_len();
+        while left > 0 {
+            let (used, ready) = self.framer.feed_zeros(left);
+            left -= used;
+            if ready {
+                self.push_frame(&mut on_update);
+            }
+        }
+        self.estimator.flush(on_update);
     }
 
-    /// As [`SharesTracker::process`], but hands the estimator itself to `on_column` after each
-    /// column (its [`SharesEstimator::last`] is the update), so a caller can also read the
-    /// presence features. Does not allocate.
+    /// One frame into the estimator's batch, completing the batch when it is full.
+    fn push_frame(&mut self, on_update: &mut impl FnMut(&SharesUpdate)) {
+        self.spectrum.process(self.framer.frame());
+        if self.estimator.push_power(self.spectrum.power()) && self.estimator.is_full() {
+            self.estimator.flush(&mut *on_update);
+        }
+        self.framer.advance();
+    }
+
+    /// As [`SharesTracker::process`], but completes each column on its own and hands the
+    /// estimator itself to `on_column` after it (its [`SharesEstimator::last`] is the update),
+    /// so a caller can also read the presence features. Does not allocate.
     pub fn process_each(&mut self, mid: &[f32], mut on_column: impl FnMut(&mut SharesEstimator)) {
         let mut i = 0;
         while i < mid.len() {
