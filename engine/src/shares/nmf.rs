@@ -408,7 +408,6 @@ impl pulp::WithSimd for KlPass<'_> {
             lambda,
         } = self;
         let (rv, rt) = S::as_simd_f32s(ratio);
-        let n = rv.len();
         let zero = simd.splat_f32s(0.0);
         let mut change = 0.0_f32;
         let mut quads = order.chunks_exact(4);
@@ -419,27 +418,10 @@ impl pulp::WithSimd for KlPass<'_> {
                 S::as_simd_f32s(dict.atom(q[2])),
                 S::as_simd_f32s(dict.atom(q[3])),
             ];
-            let mut acc = [[zero; 2]; 4];
-            let mut i = 0;
-            while i + 2 <= n {
-                for (a, (wv, _)) in acc.iter_mut().zip(&w) {
-                    a[0] = simd.mul_add_e_f32s(wv[i], rv[i], a[0]);
-                    a[1] = simd.mul_add_e_f32s(wv[i + 1], rv[i + 1], a[1]);
-                }
-                i += 2;
-            }
-            if i < n {
-                for (a, (wv, _)) in acc.iter_mut().zip(&w) {
-                    a[0] = simd.mul_add_e_f32s(wv[i], rv[i], a[0]);
-                }
-            }
+            let nums = simd_dots(simd, w, (rv, rt));
             let mut a = [0.0_f32; 4];
             for j in 0..4 {
-                let (_, wt) = w[j];
-                let mut num = simd.reduce_sum_f32s(simd.add_f32s(acc[j][0], acc[j][1]));
-                for (&x, &r) in wt.iter().zip(rt) {
-                    num += x * r;
-                }
+                let num = nums[j];
                 let old = h[q[j]];
                 a[j] = old * num;
                 change += (a[j] - old).abs();
@@ -487,6 +469,42 @@ impl pulp::WithSimd for KlPass<'_> {
         }
         change
     }
+}
+
+/// The dot products of `N` vectors `w[k]` with one vector `x`, all split by `pulp` into SIMD
+/// lanes and a tail: two accumulators per vector (for `N = 4`, eight independent fused
+/// multiply-add chains, enough to hide their latency), each `x` value loaded once for all.
+#[cfg(target_arch = "x86_64")]
+#[inline(always)]
+pub(crate) fn simd_dots<S: pulp::Simd, const N: usize>(
+    simd: S,
+    w: [(&[S::f32s], &[f32]); N],
+    x: (&[S::f32s], &[f32]),
+) -> [f32; N] {
+    let (xv, xt) = x;
+    let n = xv.len();
+    let zero = simd.splat_f32s(0.0);
+    let mut acc = [[zero; 2]; N];
+    let mut i = 0;
+    while i + 2 <= n {
+        for (a, (r, _)) in acc.iter_mut().zip(&w) {
+            a[0] = simd.mul_add_e_f32s(r[i], xv[i], a[0]);
+            a[1] = simd.mul_add_e_f32s(r[i + 1], xv[i + 1], a[1]);
+        }
+        i += 2;
+    }
+    if i < n {
+        for (a, (r, _)) in acc.iter_mut().zip(&w) {
+            a[0] = simd.mul_add_e_f32s(r[i], xv[i], a[0]);
+        }
+    }
+    std::array::from_fn(|k| {
+        let mut sum = simd.reduce_sum_f32s(simd.add_f32s(acc[k][0], acc[k][1]));
+        for (&a, &c) in w[k].1.iter().zip(xt) {
+            sum += a * c;
+        }
+        sum
+    })
 }
 
 /// `λ = Σ_k h_k w_k` over the allowed atoms in explicit SIMD (see [`KlPass`]); `lambda`

@@ -52,6 +52,8 @@
 
 use super::fine::FINE_VALUES;
 use super::nmf::dot;
+#[cfg(target_arch = "x86_64")]
+use super::nmf::simd_dots;
 use super::trees::{BoostedTrees, TreeTraining, train_trees};
 use crate::scene::SceneRng;
 use ndarray::linalg::general_mat_mul;
@@ -512,40 +514,6 @@ struct Affine<'a> {
     relu: bool,
 }
 
-/// `Σ_i w_i·x_i` of `N` weight rows against one input row, in SIMD (see [`Affine`]).
-#[cfg(target_arch = "x86_64")]
-#[inline(always)]
-fn sums<S: pulp::Simd, const N: usize>(
-    simd: S,
-    w: [(&[S::f32s], &[f32]); N],
-    x: (&[S::f32s], &[f32]),
-) -> [f32; N] {
-    let (xv, xt) = x;
-    let n = xv.len();
-    let zero = simd.splat_f32s(0.0);
-    let mut acc = [[zero; 2]; N];
-    let mut i = 0;
-    while i + 2 <= n {
-        for (a, (r, _)) in acc.iter_mut().zip(&w) {
-            a[0] = simd.mul_add_e_f32s(r[i], xv[i], a[0]);
-            a[1] = simd.mul_add_e_f32s(r[i + 1], xv[i + 1], a[1]);
-        }
-        i += 2;
-    }
-    if i < n {
-        for (a, (r, _)) in acc.iter_mut().zip(&w) {
-            a[0] = simd.mul_add_e_f32s(r[i], xv[i], a[0]);
-        }
-    }
-    std::array::from_fn(|k| {
-        let mut sum = simd.reduce_sum_f32s(simd.add_f32s(acc[k][0], acc[k][1]));
-        for (&a, &c) in w[k].1.iter().zip(xt) {
-            sum += a * c;
-        }
-        sum
-    })
-}
-
 #[cfg(target_arch = "x86_64")]
 impl pulp::WithSimd for Affine<'_> {
     type Output = ();
@@ -567,7 +535,7 @@ impl pulp::WithSimd for Affine<'_> {
         while j + 4 <= b.len() {
             let wv: [_; 4] = std::array::from_fn(|k| row(j + k));
             for (x, o) in xs.chunks_exact(d).zip(outs.chunks_mut(out_stride)) {
-                let s = sums(simd, wv, S::as_simd_f32s(x));
+                let s = simd_dots(simd, wv, S::as_simd_f32s(x));
                 for k in 0..4 {
                     o[j + k] = finish(b[j + k] + s[k]);
                 }
@@ -577,7 +545,7 @@ impl pulp::WithSimd for Affine<'_> {
         for j in j..b.len() {
             let wv = [row(j)];
             for (x, o) in xs.chunks_exact(d).zip(outs.chunks_mut(out_stride)) {
-                o[j] = finish(b[j] + sums(simd, wv, S::as_simd_f32s(x))[0]);
+                o[j] = finish(b[j] + simd_dots(simd, wv, S::as_simd_f32s(x))[0]);
             }
         }
     }
