@@ -100,9 +100,10 @@ impl BoostedTrees {
         let first = family * self.trees;
         let mut t = 0;
         while t + WALK_TOGETHER <= self.trees {
-            let trees = std::array::from_fn(|k| self.tree(first + t + k));
+            let trees: [TreeView<'_>; WALK_TOGETHER] =
+                std::array::from_fn(|k| self.tree(first + t + k));
             for (r, l) in logits.iter_mut().enumerate() {
-                for leaf in self.walk(trees, [row(r); WALK_TOGETHER]) {
+                for leaf in self.walk(trees, row(r)) {
                     *l += leaf;
                 }
             }
@@ -111,20 +112,19 @@ impl BoostedTrees {
         for t in t..self.trees {
             let tree = [self.tree(first + t)];
             for (r, l) in logits.iter_mut().enumerate() {
-                *l += self.walk(tree, [row(r)])[0];
+                *l += self.walk(tree, row(r))[0];
             }
         }
     }
 
-    /// The leaf values that `N` rows reach in `N` trees (tree `trees[k]` for row `xs[k]`),
-    /// walked side by side.
-    fn walk<const N: usize>(&self, trees: [TreeView<'_>; N], xs: [&[f32]; N]) -> [f32; N] {
+    /// The leaf values that row `x` reaches in the `N` trees `trees`, walked side by side.
+    fn walk<const N: usize>(&self, trees: [TreeView<'_>; N], x: &[f32]) -> [f32; N] {
         let mut at = [0_usize; N];
         for _ in 0..self.depth {
             for (k, i) in at.iter_mut().enumerate() {
                 let (feature, value) = trees[k].nodes[*i];
                 // `check` keeps every feature below `x.len()`; a miss goes left.
-                let right = xs[k].get(feature as usize).is_some_and(|&v| v >= value);
+                let right = x.get(feature as usize).is_some_and(|&v| v >= value);
                 *i = 2 * *i + 1 + usize::from(right);
             }
         }
