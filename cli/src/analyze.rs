@@ -68,14 +68,18 @@ impl AnalyzeOptions {
 /// Reads a palette file, or the built-in palette without one.
 pub fn load_palette(path: Option<&Path>) -> Result<Arc<Palette>> {
     Ok(Arc::new(match path {
-        Some(p) => {
-            let bytes = std::fs::read(p)
-                .with_context(|| format!("palette {}: cannot read the file", p.display()))?;
-            Palette::from_bytes(&bytes)
-                .with_context(|| format!("palette {}: not a usable palette", p.display()))?
-        }
+        Some(p) => read_palette_file(p)?.0,
         None => Palette::default_palette(),
     }))
+}
+
+/// Reads and validates the palette file at `p`; returns it with the file's bytes.
+pub fn read_palette_file(p: &Path) -> Result<(Palette, Vec<u8>)> {
+    let bytes = std::fs::read(p)
+        .with_context(|| format!("palette {}: cannot read the file", p.display()))?;
+    let palette = Palette::from_bytes(&bytes)
+        .with_context(|| format!("palette {}: not a usable palette", p.display()))?;
+    Ok((palette, bytes))
 }
 
 /// A style model ready to estimate windows, and the category its closeness is for.

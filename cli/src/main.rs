@@ -19,6 +19,7 @@ mod compare;
 mod decode;
 mod demo;
 mod palette;
+mod palette_show;
 mod plot;
 mod report;
 mod resample;

@@ -1,4 +1,4 @@
-//! `weft palette learn | render | check`: build palettes from recordings or from a SoundFont,
+//! `weft palette learn | render | check` (and `show`, in [`crate::palette_show`]): build palettes from recordings or from a SoundFont,
 //! and measure them on held-out mixes against exact ground truth.
 
 use crate::decode::Source;
@@ -39,6 +39,8 @@ pub enum PaletteCommand {
     Render(RenderArgs),
     /// Measure a palette on held-out mixes rendered with exact ground truth.
     Check(CheckArgs),
+    /// Show what a palette holds: families, sections, analysis, presence model, provenance.
+    Show(crate::palette_show::ShowArgs),
 }
 
 /// Where the voice family's vowels come from.
@@ -282,6 +284,7 @@ pub fn run(args: PaletteArgs) -> Result<()> {
     match args.command {
         PaletteCommand::Learn(a) => learn(&a),
         PaletteCommand::Render(a) => render(&a),
+        PaletteCommand::Show(a) => crate::palette_show::run(&a),
         PaletteCommand::Check(a) => {
             if let Some(p) = &a.plot
                 && crate::plot::PlotFormat::from_path(p).is_none()
@@ -602,15 +605,56 @@ fn learn(a: &LearnArgs) -> Result<()> {
         weft_version: env!("CARGO_PKG_VERSION").to_owned(),
         source: format!("folders: {}", names.join(", ")),
         seed: plan.seed,
-        notes: vec![format!(
-            "{} training mixes of {} s",
-            plan.training_mixes, plan.mix_s
-        )],
+        notes: training_notes(&plan),
     };
     let palette = build_palette(
         &a.name, families, sections, None, &composer, &bank, &plan, provenance, &progress,
     )?;
     write_palette(&palette, &a.out)
+}
+
+/// The provenance notes on how the presence stage was trained (what `weft palette show`
+/// prints): the mixes, the rows kept, the networks, the trees and the share network.
+fn training_notes(plan: &BuildPlan) -> Vec<String> {
+    let p = &plan.presence;
+    if plan.training_mixes == 0 {
+        return vec!["no presence model (no training mixes)".to_owned()];
+    }
+    let rows = if plan.row_stride <= 1 {
+        "every presence row kept".to_owned()
+    } else {
+        format!("one presence row in {} kept", plan.row_stride)
+    };
+    let mut model = format!(
+        "presence model: {} network(s) of {} hidden units, {} epochs, thresholds chosen for F-beta with beta {}",
+        p.members, p.hidden, p.epochs, p.threshold_beta
+    );
+    if p.trees.trees > 0 {
+        model += &format!(
+            "; up to {} boosted trees of depth {} per family",
+            p.trees.trees, p.trees.depth
+        );
+    }
+    let shares = if p.shares.hidden == 0 {
+        "no direct share network".to_owned()
+    } else {
+        format!(
+            "direct share network: {} hidden units, exponent {}, admit {}",
+            p.shares.hidden, p.shares.exponent, p.shares.admit
+        )
+    };
+    vec![
+        format!(
+            "{} training mixes of {} s, 1-{} families at {} to {} dB; {rows}",
+            plan.training_mixes,
+            plan.mix_s,
+            plan.max_families,
+            plan.gain_range_db.0,
+            plan.gain_range_db.1
+        ),
+        model,
+        shares,
+    ]
 }
 
 fn write_palette(palette: &Palette, out: &Path) -> Result<()> {
@@ -643,7 +687,13 @@ fn soundfont_scene(
         let version = Command::new("espeak-ng")
             .arg("--version")
             .output()
-            .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_owned())
+            .map(|o| {
+                // "eSpeak NG text-to-speech: 1.51  Data at: /usr/lib/…": the version, not
+                // where its data lies on the machine that built the palette.
+                let text = String::from_utf8_lossy(&o.stdout);
+                let version = text.split("Data at").next().unwrap_or_default();
+                version.trim().to_owned()
+            })
             .unwrap_or_default();
         source = format!(
             "{} espeak-ng clips ({version}) and choir programs 52-54",
@@ -669,30 +719,12 @@ fn render(a: &RenderArgs) -> Result<()> {
             renderer.soundfont_name()
         ),
         seed: plan.seed,
-        notes: vec![
-            format!(
-                "note studies every {} keys at velocities {:?}; {} atoms per family",
-                plan.study_key_step, plan.study_velocities, plan.learn.atoms
-            ),
-            format!(
-                "{} training mixes of {} s, 1-{} families at {:?} dB; presence model with {} hidden units",
-                plan.training_mixes,
-                plan.mix_s,
-                plan.max_families,
-                plan.gain_range_db,
-                plan.presence.hidden
-            ),
-            if plan.presence.shares.hidden == 0 {
-                "no direct share network".to_owned()
-            } else {
-                format!(
-                    "direct share network: {} hidden units, exponent {}, admit {}",
-                    plan.presence.shares.hidden,
-                    plan.presence.shares.exponent,
-                    plan.presence.shares.admit
-                )
-            },
-        ],
+        notes: std::iter::once(format!(
+            "note studies every {} keys at velocities {:?}; {} atoms per family",
+            plan.study_key_step, plan.study_velocities, plan.learn.atoms
+        ))
+        .chain(training_notes(&plan))
+        .collect(),
     };
     let palette = build_palette(
         "Weft default",
@@ -710,14 +742,7 @@ fn render(a: &RenderArgs) -> Result<()> {
 
 /// Runs `weft palette check` and returns its report.
 pub fn check(a: &CheckArgs) -> Result<CheckReport> {
-    let palette = match &a.palette {
-        Some(p) => {
-            let bytes = std::fs::read(p).with_context(|| format!("cannot read {}", p.display()))?;
-            Palette::from_bytes(&bytes)
-                .with_context(|| format!("{} is not a usable palette", p.display()))?
-        }
-        None => Palette::default_palette(),
-    };
+    let palette = crate::analyze::load_palette(a.palette.as_deref())?;
     let gm = general_midi_voicings();
     // Voicings aligned with the palette's families: recordings first, then the SoundFont.
     let (folder_names, folder_bank) = match &a.folders {

@@ -169,3 +169,97 @@ fn a_check_draws_its_figures_per_family_and_by_how_many_families_sound() {
         assert!(svg.contains(label), "{label} missing from the plot");
     }
 }
+
+/// A small palette of the fuzz corpus, with a presence network and boosted trees.
+fn corpus_palette(name: &str) -> std::path::PathBuf {
+    std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../tests/corpus/palette_load")
+        .join(name)
+}
+
+#[test]
+fn show_reports_what_the_palette_file_holds() {
+    use weft_engine::palette::Palette;
+    let path = corpus_palette("valid-small-trees.weftpal");
+    let bytes = std::fs::read(&path).expect("corpus palette");
+    let palette = Palette::from_bytes(&bytes).expect("a valid palette");
+    let o = weft(&["palette", "show", path_str(&path), "--json"]);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON");
+    assert_eq!(v["name"], palette.name());
+    assert_eq!(v["bytes"], bytes.len());
+    assert_eq!(v["format_version"], 2);
+    assert_eq!(v["seed"], palette.provenance().seed);
+    assert_eq!(v["bands"], palette.analysis().bands);
+    let families = v["families"].as_array().expect("families");
+    assert_eq!(families.len(), palette.families().len());
+    let model = palette.presence().expect("the corpus palette has a model");
+    let trees = model.trees.as_ref().expect("and trees");
+    let leaves = 1 << trees.depth;
+    for (f, (shown, fam)) in families.iter().zip(palette.families()).enumerate() {
+        assert_eq!(shown["name"], fam.name.as_str());
+        assert_eq!(shown["section"], palette.sections()[fam.section].as_str());
+        assert_eq!(shown["atoms"], palette.atom_counts()[f]);
+        let t = shown["threshold"].as_f64().expect("threshold");
+        assert!((t - f64::from(model.thresholds[f])).abs() < 1e-6);
+        // Trees whose leaves are not all zero, counted here from the file's arrays.
+        let own = &trees.leaf[f * trees.trees * leaves..(f + 1) * trees.trees * leaves];
+        let used = own
+            .chunks(leaves)
+            .filter(|l| l.iter().any(|&x| x != 0.0))
+            .count();
+        assert_eq!(shown["trees_in_use"], used, "{}", fam.name);
+    }
+    assert_eq!(v["presence"]["features"], model.features);
+    assert_eq!(v["presence"]["trees_per_family"], trees.trees);
+    assert_eq!(v["presence"]["tree_depth"], trees.depth);
+    assert!(v["presence"]["share_network_hidden_units"].is_null());
+
+    // The table says the same in words, each family under its section.
+    let o = weft(&["palette", "show", path_str(&path)]);
+    assert!(o.status.success());
+    let out = text(&o.stdout);
+    assert!(out.contains("2 families in 2 sections"), "{out}");
+    assert!(out.contains("boosted trees of depth 2"), "{out}");
+    assert!(out.contains("no direct share network"), "{out}");
+    for fam in palette.families() {
+        let line = out
+            .lines()
+            .find(|l| l.split_whitespace().any(|w| w == fam.name))
+            .unwrap_or_else(|| panic!("{} missing: {out}", fam.name));
+        assert!(line.contains(&palette.sections()[fam.section]), "{line}");
+    }
+
+    // A palette of the first format says so.
+    let old = corpus_palette("valid-small.weftpal");
+    let o = weft(&["palette", "show", path_str(&old), "--json"]);
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON");
+    assert_eq!(v["format_version"], 1);
+}
+
+#[test]
+fn show_describes_the_built_in_palette_and_refuses_what_is_not_a_palette() {
+    let o = weft(&["palette", "show", "--json"]);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON");
+    let builtin = weft_engine::palette::Palette::default_palette();
+    assert!(v["file"].is_null());
+    assert_eq!(v["families"].as_array().map(Vec::len), Some(16));
+    assert_eq!(v["sections"].as_array().map(Vec::len), Some(8));
+    assert_eq!(
+        v["presence"]["features"],
+        builtin.presence().expect("the built-in palette has a model").features
+    );
+    // Not a palette: a clear error on stderr, nothing on stdout, exit status 1.
+    let dir = tempfile::tempdir().expect("temp dir");
+    let junk = dir.path().join("junk.weftpal");
+    std::fs::write(&junk, b"RIFF....WAVEfmt ").expect("write");
+    let o = weft(&["palette", "show", path_str(&junk)]);
+    assert_eq!(o.status.code(), Some(1));
+    assert!(o.stdout.is_empty());
+    let err = text(&o.stderr);
+    assert!(
+        err.contains("junk.weftpal") && err.contains("not a usable palette"),
+        "{err}"
+    );
+}
