@@ -938,3 +938,44 @@ fn print_report(r: &CheckReport) {
         100.0 / r.realtime_factor.max(1e-9)
     );
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_build_s_notes_name_the_rows_the_networks_and_the_trees() {
+        let mut plan = BuildPlan {
+            training_mixes: 384_000,
+            row_stride: 2,
+            ..BuildPlan::default()
+        };
+        plan.presence.members = 4;
+        plan.presence.hidden = 128;
+        plan.presence.trees.trees = 300;
+        plan.presence.trees.depth = 6;
+        plan.presence.shares.hidden = 512;
+        let notes = training_notes(&plan).join("\n");
+        for part in [
+            "384000 training mixes",
+            "one presence row in 2 kept",
+            "4 network(s) of 128 hidden units",
+            "up to 300 boosted trees of depth 6",
+            "direct share network: 512 hidden units",
+        ] {
+            assert!(notes.contains(part), "{part}: {notes}");
+        }
+        plan.row_stride = 1;
+        plan.presence.trees.trees = 0;
+        plan.presence.shares.hidden = 0;
+        let notes = training_notes(&plan).join("\n");
+        assert!(notes.contains("every presence row kept"), "{notes}");
+        assert!(!notes.contains("boosted"), "{notes}");
+        assert!(notes.contains("no direct share network"), "{notes}");
+        plan.training_mixes = 0;
+        assert_eq!(
+            training_notes(&plan),
+            ["no presence model (no training mixes)"]
+        );
+    }
+}

@@ -248,7 +248,10 @@ fn show_describes_the_built_in_palette_and_refuses_what_is_not_a_palette() {
     assert_eq!(v["sections"].as_array().map(Vec::len), Some(8));
     assert_eq!(
         v["presence"]["features"],
-        builtin.presence().expect("the built-in palette has a model").features
+        builtin
+            .presence()
+            .expect("the built-in palette has a model")
+            .features
     );
     // Not a palette: a clear error on stderr, nothing on stdout, exit status 1.
     let dir = tempfile::tempdir().expect("temp dir");
