@@ -451,13 +451,8 @@ pub fn build_palette(
     let mut training = plan.presence;
     training.seed = SceneRng::derive(plan.seed, 77).next_u64();
     training.threads = plan.threads;
-    let what = if plan.presence.trees.trees > 0 {
-        "presence epochs and trees"
-    } else {
-        "presence epochs"
-    };
-    let epochs = |done, total| tell_tenths(progress, what, done, total);
-    let mut model = train_presence_reporting(&x, features, &y, nf, &training, &epochs);
+    let steps = |what: &str, done, total| tell_tenths(progress, what, done, total);
+    let mut model = train_presence_reporting(&x, features, &y, nf, &training, &steps);
     if training.shares.hidden > 0 {
         progress(&format!(
             "training the direct share network ({} hidden units)",

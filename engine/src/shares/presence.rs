@@ -684,18 +684,26 @@ pub fn train_presence(
     families: usize,
     opts: &PresenceTraining,
 ) -> PresenceModel {
-    train_presence_reporting(rows, features, labels, families, opts, &|_, _| {})
+    train_presence_reporting(rows, features, labels, families, opts, &|_, _, _| {})
 }
 
-/// [`train_presence`], telling `report(done, total)` after each epoch of each member how many
-/// epochs of all members are done (from the thread that fitted it; the result is the same).
+/// What [`train_presence_reporting`] tells of the networks' epochs.
+pub const EPOCH_STEPS: &str = "presence epochs";
+/// What [`train_presence_reporting`] tells of the boosted trees.
+pub const TREE_STEPS: &str = "boosted trees";
+
+/// [`train_presence`], telling `report(what, done, total)` after each epoch of each member how
+/// many epochs of all members are done (`what` is [`EPOCH_STEPS`]; from the thread that fitted
+/// it), then after each boosted tree how many trees of all families are done ([`TREE_STEPS`];
+/// a family that stops early has its remaining trees told at the end). The two take different
+/// times per step, so they are counted apart. The result is the same as without reports.
 pub fn train_presence_reporting(
     rows: &[f32],
     features: usize,
     labels: &[bool],
     families: usize,
     opts: &PresenceTraining,
-    report: &(dyn Fn(usize, usize) + Sync),
+    report: &(dyn Fn(&str, usize, usize) + Sync),
 ) -> PresenceModel {
     let n = rows.len().checked_div(features).unwrap_or(0);
     let (mean, scale) = standardisation(rows, features, n);
@@ -744,7 +752,8 @@ pub fn train_presence_reporting(
     };
     // A logistic regression is convex: members would all reach the same weights.
     let members = if hidden == 0 { 1 } else { members };
-    let epochs = EpochCount::new(members * opts.epochs + families * opts.trees.trees, report);
+    let epoch_report = |done: usize, total: usize| report(EPOCH_STEPS, done, total);
+    let epochs = EpochCount::new(members * opts.epochs, &epoch_report);
     let threads = opts.threads.clamp(1, members);
     let mut fitted: Vec<Option<Params>> = vec![None; members];
     std::thread::scope(|scope| {
@@ -770,6 +779,8 @@ pub fn train_presence_reporting(
         families,
     );
     let hidden = hidden * members;
+    let tree_report = |done: usize, total: usize| report(TREE_STEPS, done, total);
+    let tree_count = EpochCount::new(families * opts.trees.trees, &tree_report);
     let trees = train_trees(
         rows,
         features,
@@ -781,9 +792,9 @@ pub fn train_presence_reporting(
         &opts.trees,
         SceneRng::derive(opts.seed, TREE_STREAM).next_u64(),
         opts.threads,
-        &|| epochs.epoch_done(),
+        &|| tree_count.epoch_done(),
     );
-    epochs.finish();
+    tree_count.finish();
     // Thresholds: maximise F_β on the held-back rows (0.5 when there are none).
     let b2 = f64::from(opts.threshold_beta.clamp(0.05, 20.0)).powi(2);
     let mut hbuf = vec![0.0_f32; hidden];
@@ -2173,11 +2184,19 @@ mod tests {
         let told = Mutex::new(Vec::new());
         let report =
             |done: usize, total: usize| told.lock().expect("not poisoned").push((done, total));
-        let reported = train_presence_reporting(&rows, 2, &labels, 2, &opts, &report);
+        let steps = Mutex::new(Vec::new());
+        let report_steps = |what: &str, done: usize, total: usize| {
+            steps
+                .lock()
+                .expect("not poisoned")
+                .push((what.to_owned(), done, total));
+        };
+        let reported = train_presence_reporting(&rows, 2, &labels, 2, &opts, &report_steps);
         assert_eq!(reported, train_presence(&rows, 2, &labels, 2, &opts));
-        let mut got = std::mem::take(&mut *told.lock().expect("not poisoned"));
+        let mut got = std::mem::take(&mut *steps.lock().expect("not poisoned"));
         got.sort_unstable();
-        let want: Vec<(usize, usize)> = (1..=15).map(|d| (d, 15)).collect();
+        let want: Vec<(String, usize, usize)> =
+            (1..=15).map(|d| (EPOCH_STEPS.to_owned(), d, 15)).collect();
         assert_eq!(got, want, "3 members × 5 epochs, each told once");
         // The share network: one fit, its own epochs.
         opts.shares = ShareTraining {
@@ -2193,18 +2212,28 @@ mod tests {
         assert_eq!(net, train_share_network(&rows, &shares, &reported, &opts));
         let got = std::mem::take(&mut *told.lock().expect("not poisoned"));
         assert_eq!(got, vec![(1, 3), (2, 3), (3, 3)]);
-        // Boosted trees count as steps of the presence fit: 15 epochs and 2 × 4 trees.
+        // Boosted trees are counted on their own, after the 15 epochs: 2 families × 4 trees.
         opts.trees = TreeTraining {
             trees: 4,
             depth: 2,
             patience: 100,
             ..TreeTraining::default()
         };
-        let with_trees = train_presence_reporting(&rows, 2, &labels, 2, &opts, &report);
+        let with_trees = train_presence_reporting(&rows, 2, &labels, 2, &opts, &report_steps);
         assert_eq!(with_trees.trees.as_ref().map(|t| t.trees), Some(4));
-        let mut got = std::mem::take(&mut *told.lock().expect("not poisoned"));
-        got.sort_unstable();
-        let want: Vec<(usize, usize)> = (1..=23).map(|d| (d, 23)).collect();
-        assert_eq!(got, want, "15 epochs and 8 trees, each told once");
+        let got = std::mem::take(&mut *steps.lock().expect("not poisoned"));
+        let (mut epochs, trees): (Vec<_>, Vec<_>) = got
+            .into_iter()
+            .partition(|(what, _, _)| what == EPOCH_STEPS);
+        epochs.sort_unstable();
+        let want: Vec<(String, usize, usize)> =
+            (1..=15).map(|d| (EPOCH_STEPS.to_owned(), d, 15)).collect();
+        assert_eq!(epochs, want, "15 epochs, each told once");
+        // One thread per family may finish its trees in any order; each count is told once.
+        let mut trees = trees;
+        trees.sort_unstable();
+        let want: Vec<(String, usize, usize)> =
+            (1..=8).map(|d| (TREE_STEPS.to_owned(), d, 8)).collect();
+        assert_eq!(trees, want, "2 families × 4 trees, each told once");
     }
 }
