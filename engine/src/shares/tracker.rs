@@ -53,27 +53,38 @@ impl SharesTracker {
     /// columns of one block are completed together, see [`SharesEstimator::flush`]; the
     /// values do not depend on the block size). Does not allocate.
     pub fn process(&mut self, mid: &[f32], mut on_update: impl FnMut(&SharesUpdate)) {
+        self.each_frame(mid, |t| t.push_frame(&mut on_update));
+        self.estimator.flush(on_update);
+    }
+
+    /// Frames `mid` and calls `on_frame` for every frame completed (the framer's frame is then
+    /// ready to read).
+    fn each_frame(&mut self, mid: &[f32], mut on_frame: impl FnMut(&mut Self)) {
         let mut i = 0;
         while i < mid.len() {
             let (used, ready) = self.framer.feed(&mid[i..]);
             i += used;
             if ready {
-                self.push_frame(&mut on_update);
+                on_frame(self);
             }
         }
-        self.estimator.flush(on_update);
     }
 
-    /// Completes a whole clip (the trailing centre padding), reporting the last updates.
-    pub fn finish(&mut self, mut on_update: impl FnMut(&SharesUpdate)) {
+    /// Completes the trailing centre padding, calling `on_frame` for every frame completed.
+    fn each_tail_frame(&mut self, mut on_frame: impl FnMut(&mut Self)) {
         let mut left = self.framer.tail_len();
         while left > 0 {
             let (used, ready) = self.framer.feed_zeros(left);
             left -= used;
             if ready {
-                self.push_frame(&mut on_update);
+                on_frame(self);
             }
         }
+    }
+
+    /// Completes a whole clip (the trailing centre padding), reporting the last updates.
+    pub fn finish(&mut self, mut on_update: impl FnMut(&SharesUpdate)) {
+        self.each_tail_frame(|t| t.push_frame(&mut on_update));
         self.estimator.flush(on_update);
     }
 
@@ -90,26 +101,12 @@ impl SharesTracker {
     /// estimator itself to `on_column` after it (its [`SharesEstimator::last`] is the update),
     /// so a caller can also read the presence features. Does not allocate.
     pub fn process_each(&mut self, mid: &[f32], mut on_column: impl FnMut(&mut SharesEstimator)) {
-        let mut i = 0;
-        while i < mid.len() {
-            let (used, ready) = self.framer.feed(&mid[i..]);
-            i += used;
-            if ready {
-                self.frame(&mut on_column);
-            }
-        }
+        self.each_frame(mid, |t| t.frame(&mut on_column));
     }
 
     /// As [`SharesTracker::finish`], handing the estimator to `on_column`.
     pub fn finish_each(&mut self, mut on_column: impl FnMut(&mut SharesEstimator)) {
-        let mut left = self.framer.tail_len();
-        while left > 0 {
-            let (used, ready) = self.framer.feed_zeros(left);
-            left -= used;
-            if ready {
-                self.frame(&mut on_column);
-            }
-        }
+        self.each_tail_frame(|t| t.frame(&mut on_column));
     }
 
     fn frame(&mut self, on_column: &mut impl FnMut(&mut SharesEstimator)) {
