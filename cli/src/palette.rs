@@ -1,5 +1,6 @@
-//! `weft palette learn | render | check` (and `show`, in [`crate::palette_show`]): build palettes from recordings or from a SoundFont,
-//! and measure them on held-out mixes against exact ground truth.
+//! `weft palette learn | render | check`: build palettes from recordings or from a SoundFont,
+//! and measure them on held-out mixes against exact ground truth. (`show` lives in
+//! [`crate::palette_show`].)
 
 use crate::decode::Source;
 use crate::resample::StreamResampler;
@@ -625,9 +626,14 @@ fn training_notes(plan: &BuildPlan) -> Vec<String> {
     } else {
         format!("one presence row in {} kept", plan.row_stride)
     };
+    let shape = if p.hidden == 0 {
+        "logistic regression".to_owned()
+    } else {
+        format!("{} network(s) of {} hidden units", p.members, p.hidden)
+    };
     let mut model = format!(
-        "presence model: {} network(s) of {} hidden units, {} epochs, thresholds chosen for F-beta with beta {}",
-        p.members, p.hidden, p.epochs, p.threshold_beta
+        "presence model: {shape}, {} epochs, thresholds chosen for F-beta with beta {}",
+        p.epochs, p.threshold_beta
     );
     if p.trees.trees > 0 {
         model += &format!(
@@ -968,7 +974,12 @@ mod tests {
         plan.row_stride = 1;
         plan.presence.trees.trees = 0;
         plan.presence.shares.hidden = 0;
+        plan.presence.hidden = 0;
         let notes = training_notes(&plan).join("\n");
+        assert!(
+            notes.contains("presence model: logistic regression"),
+            "{notes}"
+        );
         assert!(notes.contains("every presence row kept"), "{notes}");
         assert!(!notes.contains("boosted"), "{notes}");
         assert!(notes.contains("no direct share network"), "{notes}");
