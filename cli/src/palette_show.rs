@@ -6,6 +6,7 @@ use crate::analyze::read_palette_file;
 use anyhow::Result;
 use clap::Args;
 use serde::Serialize;
+use std::borrow::Cow;
 use std::path::PathBuf;
 use weft_engine::palette::{FORMAT_VERSION, MAGIC, Palette};
 use weft_engine::shares::presence::PresenceModel;
@@ -272,12 +273,12 @@ pub fn run(a: &ShowArgs) -> Result<()> {
     let (palette, file, bytes) = match &a.palette {
         Some(p) => {
             let (palette, bytes) = read_palette_file(p)?;
-            (palette, Some(p.display().to_string()), bytes)
+            (palette, Some(p.display().to_string()), Cow::Owned(bytes))
         }
         None => (
             Palette::default_palette(),
             None,
-            Palette::default_palette_bytes().to_vec(),
+            Cow::Borrowed(Palette::default_palette_bytes()),
         ),
     };
     let v = view(&palette, file, &bytes);
