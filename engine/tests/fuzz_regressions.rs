@@ -181,8 +181,8 @@ fn damage(target: Target, name: &str, valid: &[u8], rng: &mut SmallRng, tally: &
     }
 }
 
-/// A small palette (2 families, 16 bands, 2 stacked columns) with a presence model and boosted
-/// trees: cheap to load, so the fuzzer mutates a whole valid file rather than a truncated large
+/// A small palette (2 families, 16 bands, 2 stacked columns) with a presence model, boosted
+/// trees and split atoms: cheap to load, so the fuzzer mutates a whole valid file rather than a truncated large
 /// one.
 fn small_palette(seed: u64) -> Palette {
     let mut rng = SmallRng::seed_from_u64(seed);
@@ -241,6 +241,15 @@ fn small_palette(seed: u64) -> Palette {
             notes: vec![],
         },
     )
+    .and_then(|p| {
+        // Split atoms too, so damage reaches the last section of the file.
+        let split: Vec<f32> = p
+            .atoms()
+            .iter()
+            .map(|v| v * rng.gen_range(0.5_f32..1.5))
+            .collect();
+        p.with_split_atoms(Some(split))
+    })
     .unwrap_or_else(|err| panic!("the small palette is valid: {err} (seed {seed:#x})"))
 }
 

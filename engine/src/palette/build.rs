@@ -16,6 +16,7 @@ use crate::shares::check::{CheckReport, MixRecord, column_residuals, evaluate_mi
 use crate::shares::presence::{
     feature_count, train_presence_reporting, train_share_network_reporting,
 };
+use crate::shares::split::{SplitColumns, fit_split_atoms, split_columns, split_tv_pct};
 use crate::shares::{PresenceTraining, SharesError, SharesMode};
 use thiserror::Error;
 
@@ -76,6 +77,8 @@ pub struct BuildPlan {
     pub clip_probability: f64,
     /// Presence-model training.
     pub presence: PresenceTraining,
+    /// Split-atom fitting, the build's last step (needs a presence model).
+    pub split: SplitTraining,
     /// Seed of every random choice.
     pub seed: u64,
     /// Worker threads.
@@ -98,8 +101,31 @@ impl Default for BuildPlan {
             gain_range_db: (-24.0, 0.0),
             clip_probability: 0.6,
             presence: PresenceTraining::default(),
+            split: SplitTraining::default(),
             seed: 1,
             threads: 2,
+        }
+    }
+}
+
+/// How split atoms are fitted ([`crate::shares::split`]).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SplitTraining {
+    /// Rendered mixes whose columns they are fitted on (0: no split atoms). Every tenth is held
+    /// back to judge them.
+    pub mixes: usize,
+    /// Length of each mix, seconds.
+    pub mix_s: f64,
+    /// Multiplicative updates.
+    pub updates: usize,
+}
+
+impl Default for SplitTraining {
+    fn default() -> Self {
+        Self {
+            mixes: 0,
+            mix_s: 4.0,
+            updates: 150,
         }
     }
 }
@@ -166,6 +192,7 @@ fn weighted_quantile(pairs: &mut [(f64, f64)], q: f64) -> f64 {
 /// Seed streams, so training and checking mixes never coincide whatever seeds are given.
 const TRAIN_STREAM: u64 = 0x7261_696E;
 const CHECK_STREAM: u64 = 0x6368_6563;
+const SPLIT_STREAM: u64 = 0x7265_636E;
 
 /// Tells `progress` "`what`: `done` of `total` (p %)" when `done` reaches each tenth of `total`
 /// (every step of a step of fewer than ten), so long steps show how far they are without
@@ -491,7 +518,117 @@ pub fn build_palette(
         "unexplained tolerance: {tolerance:.3} (quantile {TOLERANCE_QUANTILE} of {} columns)",
         all.len()
     ));
-    Ok(palette.with_unexplained_tolerance(tolerance)?)
+    let palette = palette.with_unexplained_tolerance(tolerance)?;
+    if plan.split.mixes == 0 {
+        return Ok(palette);
+    }
+    fit_split(palette, renderer, composer, clips, plan, progress)
+}
+
+/// Fits `palette`'s split atoms on `plan.split.mixes` rendered mixes (of the palette's
+/// families, drawn from a stream of their own) and returns it with them; everything else is
+/// kept. The same as the last step of [`build_palette`] with this plan, so a built palette can
+/// gain split atoms without being rebuilt. If they do not divide the held-back mixes' columns
+/// better than the palette's atoms, the palette is returned without them, and `progress` says
+/// so.
+pub fn fit_split(
+    palette: Palette,
+    renderer: Option<&SoundFontRenderer>,
+    composer: &Composer,
+    clips: &ClipBank,
+    plan: &BuildPlan,
+    progress: &(dyn Fn(&str) + Sync),
+) -> Result<Palette, BuildError> {
+    let split = plan.split;
+    if palette.presence().is_none() {
+        return Err(PaletteError::Invalid {
+            field: "split atoms",
+            reason: "a palette without a presence model has no amount stage to split".into(),
+        }
+        .into());
+    }
+    let nf = palette.families().len();
+    let candidates: Vec<usize> = (0..nf).collect();
+    progress(&format!(
+        "rendering {} mixes of {} s for the split atoms",
+        split.mixes, split.mix_s
+    ));
+    let rendered = std::sync::atomic::AtomicUsize::new(0);
+    let parts = parallel(
+        split.mixes,
+        plan.threads,
+        |i| -> Result<SplitColumns, BuildError> {
+            let seed = SceneRng::derive(plan.seed ^ SPLIT_STREAM, i as u64).next_u64();
+            let mix = render_mix(
+                renderer,
+                composer,
+                clips,
+                seed,
+                &candidates,
+                plan.max_families,
+                plan.gain_range_db,
+                split.mix_s,
+                plan.sample_rate_hz,
+            )?;
+            let columns = split_columns(&palette, &mix)?;
+            let done = rendered.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
+            tell_tenths(progress, "split mixes rendered", done, split.mixes);
+            Ok(columns)
+        },
+    );
+    let dims = palette.analysis().dims();
+    let atoms = palette.atom_counts().iter().sum();
+    let mut train = SplitColumns::new(dims, atoms, nf);
+    let mut held = SplitColumns::new(dims, atoms, nf);
+    for (i, p) in parts.into_iter().enumerate() {
+        let p = p?;
+        if i % 10 == 9 {
+            held.extend(&p);
+        } else {
+            train.extend(&p);
+        }
+    }
+    if held.is_empty() || train.is_empty() {
+        progress(&format!(
+            "split atoms left out: {} mixes gave {} columns to fit and {} held back to judge by; more mixes are needed",
+            split.mixes,
+            train.len(),
+            held.len()
+        ));
+        return Ok(palette.with_split_atoms(None)?);
+    }
+    let mut family_of_atom = Vec::with_capacity(atoms);
+    for (f, &c) in palette.atom_counts().iter().enumerate() {
+        family_of_atom.extend(std::iter::repeat_n(f, c));
+    }
+    // The palette atoms as the amount stage uses them (each summing to 1): where the fit starts.
+    let mut w = palette.atoms().to_vec();
+    for atom in w.chunks_exact_mut(dims) {
+        let s: f32 = atom.iter().sum();
+        atom.iter_mut().for_each(|v| *v /= s);
+    }
+    progress(&format!(
+        "fitting the split atoms on {} columns ({} held back), {} updates",
+        train.len(),
+        held.len(),
+        split.updates
+    ));
+    let r = fit_split_atoms(&w, &family_of_atom, &train, split.updates, |i, _| {
+        tell_tenths(progress, "split atom updates", i + 1, split.updates);
+    });
+    let before = split_tv_pct(&w, &family_of_atom, &held);
+    let after = split_tv_pct(&r, &family_of_atom, &held);
+    if after >= before {
+        progress(&format!(
+            "split atoms left out: on the held-back columns they misattribute {after:.2} % of the explained energy, the palette's atoms {before:.2} %"
+        ));
+        return Ok(palette.with_split_atoms(None)?);
+    }
+    progress(&format!(
+        "split atoms: {before:.2} → {after:.2} % of the explained energy misattributed on {} held-back columns",
+        held.len()
+    ));
+    Ok(palette.with_split_atoms(Some(r))?)
 }
 
 /// Renders `plan.mixes` held-out mixes of the palette's families and scores the palette on

@@ -10,6 +10,8 @@
 //! | 4·m | atom values, f32 little-endian, family by family, atom by atom |
 //! | 8 | number of weight values `w`, u64 little-endian (must equal what the presence model's shapes need; 0 without one) |
 //! | 4·w | the presence model's weights, f32 little-endian: mean, scale, w1, b1, w2, b2, then the direct share network's w1, b1, w2, b2, then the boosted trees' base, split features, split values and leaves |
+//! | 8 | number of split atom values `s`, u64 little-endian (0, or `m`: one value per atom value) |
+//! | 4·s | the split atoms, f32 little-endian, in the atoms' order |
 //!
 //! Nothing may follow. Every size is checked against the bytes left and against a limit before
 //! anything is allocated, so a hostile file costs at most its own size.
@@ -17,7 +19,7 @@
 //! Version 1 files, whose headers carried the weights as JSON numbers and which end after the
 //! atoms, still load. Version 2 keeps the weights in binary: the same values in about a third of
 //! the bytes, and the header no longer grows with the networks, so its limit does not bound
-//! them.
+//! them. Version 2 files end after the weights (no split atoms) and still load.
 
 use super::{AnalysisSpec, Family, Palette, PaletteError, Provenance};
 use crate::shares::PresenceModel;
@@ -26,7 +28,7 @@ use serde::{Deserialize, Serialize};
 /// The first eight bytes of every palette file.
 pub const MAGIC: &[u8; 8] = b"WEFTPAL\0";
 /// The format version this build writes; it reads this one and every earlier one.
-pub const FORMAT_VERSION: u32 = 2;
+pub const FORMAT_VERSION: u32 = 3;
 /// The largest header accepted, bytes.
 pub const MAX_HEADER_BYTES: u64 = 8 << 20;
 /// The largest palette file accepted, bytes.
@@ -162,7 +164,9 @@ impl Palette {
         };
         // Serialising plain data with string keys cannot fail.
         let json = serde_json::to_vec(&header).unwrap_or_default();
-        let mut out = Vec::with_capacity(32 + json.len() + 4 * (self.atoms.len() + weights.len()));
+        let split = self.split_atoms.as_deref().unwrap_or_default();
+        let values = self.atoms.len() + weights.len() + split.len();
+        let mut out = Vec::with_capacity(40 + json.len() + 4 * values);
         out.extend_from_slice(MAGIC);
         out.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
         out.extend_from_slice(&(json.len() as u32).to_le_bytes());
@@ -173,6 +177,10 @@ impl Palette {
         }
         out.extend_from_slice(&(weights.len() as u64).to_le_bytes());
         for v in &weights {
+            out.extend_from_slice(&v.to_le_bytes());
+        }
+        out.extend_from_slice(&(split.len() as u64).to_le_bytes());
+        for v in split {
             out.extend_from_slice(&v.to_le_bytes());
         }
         out
@@ -213,6 +221,12 @@ impl Palette {
         if version >= 2 {
             read_weights(&mut r, &mut header)?;
         }
+        let split = if version >= 3 {
+            Some(r.values("split atom count", "split atom values", "split atoms")?)
+                .filter(|s| !s.is_empty())
+        } else {
+            None
+        };
         let extra = (bytes.len() - r.at) as u64;
         if extra > 0 {
             return Err(PaletteError::TrailingBytes { extra });
@@ -226,7 +240,8 @@ impl Palette {
             atoms,
             header.presence,
             header.provenance,
-        )
+        )?
+        .with_split_atoms(split)
     }
 }
 
@@ -439,7 +454,7 @@ mod tests {
         let v1 = to_bytes_v1(&p);
         assert_eq!(Palette::from_bytes(&v1).expect("a version 1 file loads"), p);
         let v2 = p.to_bytes();
-        assert_eq!(u32::from_le_bytes([v2[8], v2[9], v2[10], v2[11]]), 2);
+        assert_eq!(u32::from_le_bytes([v2[8], v2[9], v2[10], v2[11]]), 3);
         // The header names the shapes but holds no weight array.
         let header_len = u32::from_le_bytes([v2[12], v2[13], v2[14], v2[15]]) as usize;
         let header: serde_json::Value =
@@ -457,7 +472,8 @@ mod tests {
             + model.w2.len()
             + model.b2.len();
         assert_eq!(count, expected);
-        assert_eq!(v2.len(), at + 8 + 4 * count);
+        // Then an empty split-atom section.
+        assert_eq!(v2.len(), at + 8 + 4 * count + 8);
         // The first weight is the first feature's mean, bit for bit.
         assert_eq!(
             f32::from_le_bytes(v2[at + 8..at + 12].try_into().expect("4 bytes")).to_bits(),
@@ -467,8 +483,126 @@ mod tests {
         // Without a presence model the weight section is empty.
         let bare = small(6, false).to_bytes();
         let at = weights_at(&bare);
-        assert_eq!(bare.len(), at + 8);
-        assert_eq!(u64::from_le_bytes(bare[at..].try_into().expect("8")), 0);
+        assert_eq!(bare.len(), at + 16);
+        assert_eq!(
+            u64::from_le_bytes(bare[at..at + 8].try_into().expect("8")),
+            0
+        );
+    }
+
+    /// `p` with split atoms: its own atoms, each value scaled by a seeded factor.
+    fn with_split(p: Palette, seed: u64) -> Palette {
+        let mut rng = SceneRng::new(seed);
+        let r: Vec<f32> = p
+            .atoms()
+            .iter()
+            .map(|v| v * (0.5 + rng.unit() as f32))
+            .collect();
+        p.with_split_atoms(Some(r)).expect("valid split atoms")
+    }
+
+    #[test]
+    fn split_atoms_travel_last_and_version_2_files_still_load() {
+        let p = with_split(small(9, true), 1);
+        let bytes = p.to_bytes();
+        assert_eq!(
+            u32::from_le_bytes([bytes[8], bytes[9], bytes[10], bytes[11]]),
+            3
+        );
+        let q = Palette::from_bytes(&bytes).expect("reads back");
+        assert_eq!(q.split_atoms(), p.split_atoms());
+        assert_eq!(q, p);
+        let r = p.split_atoms().expect("split atoms");
+        let at = bytes.len() - 4 * r.len();
+        assert_eq!(
+            u64::from_le_bytes(bytes[at - 8..at].try_into().expect("8 bytes")),
+            r.len() as u64
+        );
+        assert_eq!(
+            f32::from_le_bytes(bytes[at..at + 4].try_into().expect("4 bytes")).to_bits(),
+            r[0].to_bits()
+        );
+        // Without split atoms the section is an empty count; a version 2 file (no section at
+        // all) reads as the same palette.
+        let bare = small(9, true);
+        let v3 = bare.to_bytes();
+        assert_eq!(
+            u64::from_le_bytes(v3[v3.len() - 8..].try_into().expect("8")),
+            0
+        );
+        let mut v2 = v3[..v3.len() - 8].to_vec();
+        v2[8..12].copy_from_slice(&2u32.to_le_bytes());
+        assert_eq!(
+            Palette::from_bytes(&v2).expect("a version 2 file loads"),
+            bare
+        );
+        // A version 2 file carrying a split section has a trailing part.
+        let mut v2_with = bytes.clone();
+        v2_with[8..12].copy_from_slice(&2u32.to_le_bytes());
+        assert!(matches!(
+            Palette::from_bytes(&v2_with),
+            Err(PaletteError::TrailingBytes { .. })
+        ));
+    }
+
+    #[test]
+    fn damaged_split_atoms_are_refused_with_reasons() {
+        let p = with_split(small(10, true), 2);
+        let good = p.to_bytes();
+        let n = p.split_atoms().expect("split").len();
+        let at = good.len() - 4 * n;
+        let reason = |bytes: &[u8]| match Palette::from_bytes(bytes) {
+            Err(PaletteError::Invalid { field, reason }) => format!("{field}: {reason}"),
+            other => panic!("expected an invalid field, got {other:?}"),
+        };
+        // One value fewer than the atoms hold (the count and the file agree).
+        let mut short = good[..good.len() - 4].to_vec();
+        short[at - 8..at].copy_from_slice(&(n as u64 - 1).to_le_bytes());
+        assert!(
+            reason(&short).starts_with(&format!("split atoms: {} values", n - 1)),
+            "{}",
+            reason(&short)
+        );
+        // A negative value, and a NaN.
+        for bad in [-1.0_f32, f32::NAN] {
+            let mut v = good.clone();
+            v[at + 4 * 5..at + 4 * 6].copy_from_slice(&bad.to_le_bytes());
+            assert!(
+                reason(&v).contains("split atom 0 holds a negative or non-finite value"),
+                "{}",
+                reason(&v)
+            );
+        }
+        // A split atom of zeros.
+        let dims = p.analysis().dims();
+        let mut zeros = good.clone();
+        let second = at + 4 * dims;
+        zeros[second..second + 4 * dims].fill(0);
+        assert!(
+            reason(&zeros).contains("split atom 1 is all zeros"),
+            "{}",
+            reason(&zeros)
+        );
+        // A count beyond the bytes left, and a file cut inside the values.
+        let mut huge = good.clone();
+        huge[at - 8..at].copy_from_slice(&u64::MAX.to_le_bytes());
+        assert!(matches!(
+            Palette::from_bytes(&huge),
+            Err(PaletteError::Limit { .. })
+        ));
+        assert!(matches!(
+            Palette::from_bytes(&good[..good.len() - 2]),
+            Err(PaletteError::Truncated { .. })
+        ));
+        // The same rules hold for split atoms handed in directly.
+        let wrong = small(10, true).with_split_atoms(Some(vec![1.0; 3]));
+        assert!(matches!(
+            wrong,
+            Err(PaletteError::Invalid {
+                field: "split atoms",
+                ..
+            })
+        ));
     }
 
     #[test]
@@ -476,8 +610,9 @@ mod tests {
         let good = small(7, true).to_bytes();
         let at = weights_at(&good);
         let count = u64::from_le_bytes(good[at..at + 8].try_into().expect("8 bytes"));
-        // One value fewer than the shapes need (and the file cut to match).
-        let mut v = good[..good.len() - 4].to_vec();
+        // One value fewer than the shapes need (and the file cut to match, the empty split-atom
+        // section kept).
+        let mut v = [&good[..good.len() - 12], &good[good.len() - 8..]].concat();
         v[at..at + 8].copy_from_slice(&(count - 1).to_le_bytes());
         match Palette::from_bytes(&v) {
             Err(PaletteError::Invalid {
@@ -499,8 +634,10 @@ mod tests {
         // Weights but no model.
         let mut bare = small(7, false).to_bytes();
         let at_bare = weights_at(&bare);
-        bare[at_bare..].copy_from_slice(&1u64.to_le_bytes());
+        bare.truncate(at_bare);
+        bare.extend_from_slice(&1u64.to_le_bytes());
         bare.extend_from_slice(&0f32.to_le_bytes());
+        bare.extend_from_slice(&0u64.to_le_bytes());
         assert!(matches!(
             Palette::from_bytes(&bare),
             Err(PaletteError::Invalid {

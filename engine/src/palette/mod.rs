@@ -12,7 +12,10 @@ mod errors;
 mod format;
 mod learn;
 
-pub use build::{BuildError, BuildPlan, CheckPlan, build_palette, check_palette, render_mix};
+pub use build::{
+    BuildError, BuildPlan, CheckPlan, SplitTraining, build_palette, check_palette, fit_split,
+    render_mix,
+};
 pub use errors::PaletteError;
 pub use format::{FORMAT_VERSION, MAGIC, MAX_FILE_BYTES, MAX_HEADER_BYTES};
 pub use learn::{LearnSettings, learn_family_atoms, stacked_columns};
@@ -190,6 +193,8 @@ pub struct Palette {
     atom_counts: Vec<usize>,
     atoms: Vec<f32>,
     presence: Option<PresenceModel>,
+    /// Split atoms (same shape as `atoms`), if fitted.
+    split_atoms: Option<Vec<f32>>,
     provenance: Provenance,
 }
 
@@ -215,6 +220,7 @@ impl Palette {
             atom_counts,
             atoms,
             presence,
+            split_atoms: None,
             provenance,
         };
         p.check()?;
@@ -319,6 +325,9 @@ impl Palette {
                 });
             }
         }
+        if let Some(r) = &self.split_atoms {
+            check_split_atoms(r, self.atoms.len(), dims)?;
+        }
         if let Some(p) = &self.presence {
             p.check(nf, self.atom_counts.iter().sum())
                 .map_err(|reason| PaletteError::Invalid {
@@ -364,6 +373,12 @@ impl Palette {
         self.presence.as_ref()
     }
 
+    /// The split atoms, if it has them: the same shape as [`Palette::atoms`], they divide the
+    /// amount stage's column among the families ([`crate::shares::split`]).
+    pub fn split_atoms(&self) -> Option<&[f32]> {
+        self.split_atoms.as_deref()
+    }
+
     /// Where it came from.
     pub fn provenance(&self) -> &Provenance {
         &self.provenance
@@ -381,6 +396,13 @@ impl Palette {
         Ok(self)
     }
 
+    /// A copy with other split atoms, or none (checked).
+    pub fn with_split_atoms(mut self, split: Option<Vec<f32>>) -> Result<Self, PaletteError> {
+        self.split_atoms = split;
+        self.check()?;
+        Ok(self)
+    }
+
     /// A copy with another *unexplained* tolerance (checked).
     pub fn with_unexplained_tolerance(mut self, tolerance: f64) -> Result<Self, PaletteError> {
         self.analysis.unexplained_tolerance = tolerance;
@@ -393,6 +415,32 @@ impl Palette {
         self.provenance = provenance;
         self
     }
+}
+
+/// Split atoms must match the atoms' shape, hold finite non-negative values and no atom of
+/// zeros.
+fn check_split_atoms(r: &[f32], values: usize, dims: usize) -> Result<(), PaletteError> {
+    let invalid = |reason: String| PaletteError::Invalid {
+        field: "split atoms",
+        reason,
+    };
+    if r.len() != values {
+        return Err(invalid(format!(
+            "{} values; the atoms hold {values}",
+            r.len()
+        )));
+    }
+    for (k, atom) in r.chunks_exact(dims).enumerate() {
+        if atom.iter().any(|v| !v.is_finite() || *v < 0.0) {
+            return Err(invalid(format!(
+                "split atom {k} holds a negative or non-finite value"
+            )));
+        }
+        if atom.iter().sum::<f32>() <= 0.0 {
+            return Err(invalid(format!("split atom {k} is all zeros")));
+        }
+    }
+    Ok(())
 }
 
 fn check_name(field: &'static str, name: &str) -> Result<(), PaletteError> {

@@ -209,6 +209,10 @@ pub struct SharesEstimator {
     cold_starts: u64,
     solved_columns: u64,
     batch: Batch,
+    /// The palette's split atoms (empty without them): they divide the amount stage's column
+    /// among the families ([`super::split`]).
+    split: Vec<f32>,
+    split_scratch: Vec<f32>,
 }
 
 /// Columns past their first stage (NMF alone), waiting for presence and amount. The first
@@ -323,6 +327,11 @@ impl SharesEstimator {
             prev_column: vec![0.0; spec.bands],
             cold_starts: 0,
             solved_columns: 0,
+            split: palette
+                .split_atoms()
+                .map(<[f32]>::to_vec)
+                .unwrap_or_default(),
+            split_scratch: vec![0.0; dims],
             batch: Batch {
                 columns: Vec::with_capacity(MAX_BATCH),
                 rows: 0,
@@ -542,6 +551,13 @@ impl SharesEstimator {
         self.batch.rows = 0;
     }
 
+    /// The amount stage's activations and stacked column of the last column completed on its
+    /// own ([`super::SharesTracker::process_each`]), as the split atoms are fitted on.
+    pub fn amount_fit(&self) -> (&[f32], &[f32]) {
+        let dims = self.dict.dims();
+        (&self.h_amount, &self.batch.stacked[..dims])
+    }
+
     fn family_energies(&mut self, from_amount: bool) -> f32 {
         self.fam_energy.fill(0.0);
         let h = if from_amount {
@@ -553,6 +569,28 @@ impl SharesEstimator {
             self.fam_energy[f] += hk;
         }
         self.fam_energy.iter().sum()
+    }
+
+    /// Divides the amount stage's `explained` energy of batch row `row` among the families by
+    /// the split atoms instead of by the palette atoms' own parts of the reconstruction.
+    fn split_explained(&mut self, row: usize, explained: f32) {
+        let dims = self.dict.dims();
+        super::split::split_column(
+            &self.split,
+            dims,
+            &self.family_of_atom,
+            &self.batch.stacked[row * dims..(row + 1) * dims],
+            &self.h_amount,
+            &mut self.split_scratch,
+            &mut self.fam_energy,
+        );
+        let s: f32 = self.fam_energy.iter().sum();
+        if s > 0.0 {
+            let k = explained / s;
+            self.fam_energy.iter_mut().for_each(|e| *e *= k);
+        } else {
+            self.family_energies(true);
+        }
     }
 
     /// Positive residual of the last solve as a fraction of `total`.
@@ -735,6 +773,9 @@ impl SharesEstimator {
             );
             let residual = self.residual_fraction(stacked, total);
             let mut explained = self.family_energies(true);
+            if !self.split.is_empty() {
+                self.split_explained(row, explained);
+            }
             if use_direct {
                 explained = self.blend_direct(&direct, explained);
             }
@@ -1124,6 +1165,89 @@ mod tests {
         let p = synthetic_palette(true);
         let x = test_mix();
         let mut t = SharesTracker::new(&p, SharesSettings::default(), SR).expect("tracker");
+        let mut n = 0;
+        assert_no_alloc::assert_no_alloc(|| {
+            for b in x.chunks(480) {
+                t.process(b, |_| n += 1);
+            }
+        });
+        assert!(n > 0);
+    }
+
+    /// The synthetic palette with split atoms fitted on the columns of a few mixes of its
+    /// families, and the energy its atoms and its split atoms misattribute on those columns.
+    fn split_palette() -> (Palette, f64, f64) {
+        use crate::shares::split::{SplitColumns, fit_split_atoms, split_columns, split_tv_pct};
+        let p = synthetic_palette(true);
+        let dims = p.analysis().dims();
+        let mut cols = SplitColumns::new(dims, 12, 3);
+        let mut rng = SceneRng::new(41);
+        for m in 0..6u64 {
+            let stems: Vec<(usize, Vec<f32>)> = (0..3)
+                .map(|f| (f, family_signal(f, 300 + m * 3 + f as u64, 2.0)))
+                .collect();
+            let members: Vec<(usize, &[f32])> =
+                stems.iter().map(|(f, s)| (*f, s.as_slice())).collect();
+            let gains: Vec<f64> = members.iter().map(|_| rng.uniform(-12.0, 0.0)).collect();
+            let mix = Mix::new(&members, &gains, SR as u32);
+            cols.extend(&split_columns(&p, &mix).expect("columns"));
+        }
+        assert!(cols.len() > 100, "{} columns", cols.len());
+        let family_of_atom: Vec<usize> = (0..12).map(|k| k / 4).collect();
+        let mut w = p.atoms().to_vec();
+        for atom in w.chunks_exact_mut(dims) {
+            let s: f32 = atom.iter().sum();
+            atom.iter_mut().for_each(|v| *v /= s);
+        }
+        let r = fit_split_atoms(&w, &family_of_atom, &cols, 40, |_, _| {});
+        let before = split_tv_pct(&w, &family_of_atom, &cols);
+        let after = split_tv_pct(&r, &family_of_atom, &cols);
+        (p.with_split_atoms(Some(r)).expect("valid"), before, after)
+    }
+
+    #[test]
+    fn split_atoms_divide_the_amount_stage_and_keep_its_invariants() {
+        let (q, before, after) = split_palette();
+        assert!(after < before, "{before} % → {after} %");
+        let p = synthetic_palette(true);
+        let x = test_mix();
+        let reference = run(&q, &x, x.len());
+        for block in [1, 333, 4096] {
+            assert_eq!(run(&q, &x, block), reference, "block {block}");
+        }
+        let plain = run(&p, &x, x.len());
+        assert_eq!(plain.len(), reference.len());
+        let mut moved = 0.0_f32;
+        for (a, b) in plain.iter().zip(&reference) {
+            // The first stage, the presence decisions and the unexplained part are the
+            // palette atoms' alone; only the division among the present families changes.
+            assert_eq!(a.nmf_alone, b.nmf_alone);
+            assert_eq!(a.present, b.present);
+            assert_eq!(a.raw.unexplained, b.raw.unexplained);
+            let sum = b.raw.share[..3].iter().sum::<f32>() + b.raw.unexplained;
+            assert!(!b.raw.signal || (sum - 1.0).abs() < 1e-4, "{sum}");
+            for f in 0..3 {
+                assert!(b.present[f] || b.raw.share[f] == 0.0);
+                moved = moved.max((a.raw.share[f] - b.raw.share[f]).abs());
+            }
+        }
+        assert!(moved > 1e-3, "the split atoms changed no share ({moved})");
+        // Scale: the division is the same at any level.
+        for db in [-20.0_f32, 20.0] {
+            let g = 10f32.powf(db / 20.0);
+            let y: Vec<f32> = x.iter().map(|v| v * g).collect();
+            for (a, b) in run(&q, &y, 4096).iter().zip(&reference) {
+                for f in 0..3 {
+                    let d = (a.smoothed.share[f] - b.smoothed.share[f]).abs();
+                    assert!(
+                        d <= 0.01,
+                        "{db} dB moved family {f} by {d} at {} s",
+                        a.time_s
+                    );
+                }
+            }
+        }
+        let mut t = SharesTracker::new(&q, SharesSettings::default(), SR).expect("tracker");
         let mut n = 0;
         assert_no_alloc::assert_no_alloc(|| {
             for b in x.chunks(480) {

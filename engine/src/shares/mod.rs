@@ -8,6 +8,7 @@
 //! - [`nmf`]: β-divergence NMF (fixed dictionary, and dictionary learning).
 //! - [`presence`]: the presence features and models.
 //! - [`trees`]: gradient-boosted trees, the presence model's second opinion.
+//! - [`split`]: split atoms, fitted to divide the amount stage's energy as the stems do.
 //! - [`check`]: scoring against exact ground truth.
 
 pub mod check;
@@ -16,6 +17,7 @@ mod estimator;
 pub mod fine;
 pub mod nmf;
 pub mod presence;
+pub mod split;
 mod tracker;
 pub mod trees;
 
