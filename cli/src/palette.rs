@@ -10,7 +10,8 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use weft_engine::palette::{
     AnalysisSpec, BuildPlan, CheckPlan, DEFAULT_FAMILIES, DEFAULT_SECTIONS, Family, LearnSettings,
-    MAX_ATOMS_PER_FAMILY, Palette, PaletteError, Provenance, build_palette, check_palette,
+    MAX_ATOMS_PER_FAMILY, Palette, PaletteError, Provenance, SplitTraining, build_palette,
+    check_palette, fit_split,
 };
 use weft_engine::scene::{
     ClipBank, Composer, FamilyVoicing, Role, SoundFontRenderer, VoiceSource, general_midi_voicings,
@@ -140,6 +141,22 @@ pub struct BuildOptions {
     /// Depth of each boosted tree.
     #[arg(long, default_value_t = TreeTraining::default().depth, value_parser = parse_tree_depth)]
     pub tree_depth: usize,
+    /// Rendered mixes to fit split atoms on, as the build's last step (0: none). Split atoms
+    /// are a second set of atoms, fitted so that the amount stage divides each column's energy
+    /// among the families as the mixes' stems did. They need a presence model.
+    #[arg(long, default_value_t = SplitTraining::default().mixes)]
+    pub split_mixes: usize,
+    /// Length of each split-atom mix, seconds.
+    #[arg(long, default_value_t = SplitTraining::default().mix_s)]
+    pub split_seconds: f64,
+    /// Multiplicative updates of the split atoms.
+    #[arg(long, default_value_t = SplitTraining::default().updates, value_parser = parse_split_updates)]
+    pub split_updates: usize,
+    /// Take the atoms, presence model and tolerance from this palette, built by the same
+    /// command with the same seed, and only fit its split atoms (needs --split-mixes): hours of
+    /// presence training are not repeated.
+    #[arg(long, value_name = "PALETTE")]
+    pub split_only: Option<PathBuf>,
     /// Worker threads (default: all cores).
     #[arg(long)]
     pub threads: Option<usize>,
@@ -273,6 +290,10 @@ fn parse_members(s: &str) -> Result<usize, String> {
     whole_number(s, 1, 16)
 }
 
+fn parse_split_updates(s: &str) -> Result<usize, String> {
+    whole_number(s, 1, 1000)
+}
+
 fn parse_pair(s: &str) -> Result<(String, String), String> {
     s.split_once('=')
         .map(|(a, b)| (a.trim().to_owned(), b.trim().to_owned()))
@@ -362,6 +383,18 @@ fn plan_from(o: &BuildOptions) -> Result<BuildPlan> {
             other => return Err(other.into()),
         }
     }
+    if o.split_mixes > 0 && o.mixes == 0 {
+        bail!(
+            "--split-mixes {}: split atoms need a presence model (--mixes above 0)",
+            o.split_mixes
+        );
+    }
+    if o.split_only.is_some() && o.split_mixes == 0 {
+        bail!("--split-only needs --split-mixes above 0");
+    }
+    if !(o.split_seconds.is_finite() && (1.0..=60.0).contains(&o.split_seconds)) {
+        bail!("--split-seconds {}: a mix lasts 1 to 60 s", o.split_seconds);
+    }
     if !(1..=MAX_ATOMS_PER_FAMILY).contains(&o.atoms) {
         bail!(
             "--atoms {}: a palette holds 1 to {MAX_ATOMS_PER_FAMILY} atoms per family",
@@ -396,6 +429,11 @@ fn plan_from(o: &BuildOptions) -> Result<BuildPlan> {
                 ..TreeTraining::default()
             },
             ..PresenceTraining::default()
+        },
+        split: SplitTraining {
+            mixes: o.split_mixes,
+            mix_s: o.split_seconds,
+            updates: o.split_updates,
         },
         seed: o.seed,
         threads: threads(o.threads),
@@ -600,6 +638,12 @@ fn learn(a: &LearnArgs) -> Result<()> {
             section: idx,
         });
     }
+    let base = a
+        .build
+        .split_only
+        .as_deref()
+        .map(|p| reused_palette(p, &plan, &families))
+        .transpose()?;
     let voicings: Vec<FamilyVoicing> = names.iter().map(|n| clip_voicing(n)).collect();
     let composer = Composer::new(voicings, bank.counts(), 1.0);
     let provenance = Provenance {
@@ -608,11 +652,67 @@ fn learn(a: &LearnArgs) -> Result<()> {
         seed: plan.seed,
         notes: training_notes(&plan),
     };
-    let palette = build_palette(
-        &a.name, families, sections, None, &composer, &bank, &plan, provenance, &progress,
-    )?;
-    write_palette(&palette, &a.out)
+    let palette = match base {
+        Some(base) => fit_split(base, None, &composer, &bank, &plan, &progress)?,
+        None => build_palette(
+            &a.name, families, sections, None, &composer, &bank, &plan, provenance, &progress,
+        )?,
+    };
+    write_palette(&with_split_note(palette, &plan), &a.out)
 }
+
+/// The palette of `--split-only`: it must hold these families and have been built with this
+/// seed, and it must have a presence model.
+fn reused_palette(path: &Path, plan: &BuildPlan, families: &[Family]) -> Result<Palette> {
+    let palette = crate::analyze::load_palette(Some(path))?;
+    let names = |f: &[Family]| f.iter().map(|x| x.name.clone()).collect::<Vec<_>>();
+    if names(palette.families()) != names(families) {
+        bail!(
+            "--split-only {}: its families ({}) are not the ones this build makes ({})",
+            path.display(),
+            names(palette.families()).join(", "),
+            names(families).join(", ")
+        );
+    }
+    if palette.provenance().seed != plan.seed {
+        bail!(
+            "--split-only {}: it was built with seed {}, this build uses --seed {}",
+            path.display(),
+            palette.provenance().seed,
+            plan.seed
+        );
+    }
+    if palette.presence().is_none() {
+        bail!(
+            "--split-only {}: it has no presence model, so no amount stage to split",
+            path.display()
+        );
+    }
+    Ok(std::sync::Arc::unwrap_or_clone(palette))
+}
+
+/// `palette` with a provenance note on its split atoms in place of any earlier one.
+fn with_split_note(palette: Palette, plan: &BuildPlan) -> Palette {
+    let s = plan.split;
+    if s.mixes == 0 {
+        return palette;
+    }
+    let mut provenance = palette.provenance().clone();
+    provenance.notes.retain(|n| !n.starts_with(SPLIT_NOTE));
+    let fitted = format!(
+        "{SPLIT_NOTE} fitted on {} mixes of {} s, {} updates",
+        s.mixes, s.mix_s, s.updates
+    );
+    provenance.notes.push(if palette.split_atoms().is_some() {
+        fitted
+    } else {
+        format!("{fitted}; left out, no better on held-back mixes")
+    });
+    palette.with_provenance(provenance)
+}
+
+/// How the provenance note on split atoms begins.
+const SPLIT_NOTE: &str = "split atoms:";
 
 /// The provenance notes on how the presence stage was trained (what `weft palette show`
 /// prints): the mixes, the rows kept, the networks, the trees and the share network.
@@ -714,10 +814,16 @@ fn soundfont_scene(
 
 fn render(a: &RenderArgs) -> Result<()> {
     let plan = plan_from(&a.build)?;
+    let (families, sections) = default_families();
+    let base = a
+        .build
+        .split_only
+        .as_deref()
+        .map(|p| reused_palette(p, &plan, &families))
+        .transpose()?;
     let renderer = load_soundfont(&a.soundfont)?;
     let (voicings, bank, voice_source) = soundfont_scene(a.voice, 0)?;
     let composer = Composer::new(voicings, bank.counts(), 0.6);
-    let (families, sections) = default_families();
     let provenance = Provenance {
         weft_version: env!("CARGO_PKG_VERSION").to_owned(),
         source: format!(
@@ -732,18 +838,21 @@ fn render(a: &RenderArgs) -> Result<()> {
         .chain(training_notes(&plan))
         .collect(),
     };
-    let palette = build_palette(
-        "Weft default",
-        families,
-        sections,
-        Some(&renderer),
-        &composer,
-        &bank,
-        &plan,
-        provenance,
-        &progress,
-    )?;
-    write_palette(&palette, &a.out)
+    let palette = match base {
+        Some(base) => fit_split(base, Some(&renderer), &composer, &bank, &plan, &progress)?,
+        None => build_palette(
+            "Weft default",
+            families,
+            sections,
+            Some(&renderer),
+            &composer,
+            &bank,
+            &plan,
+            provenance,
+            &progress,
+        )?,
+    };
+    write_palette(&with_split_note(palette, &plan), &a.out)
 }
 
 /// Runs `weft palette check` and returns its report.

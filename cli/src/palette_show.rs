@@ -77,6 +77,8 @@ struct PaletteView {
     sections: Vec<String>,
     families: Vec<FamilyView>,
     presence: Option<PresenceView>,
+    /// Whether split atoms divide the amount stage's energy.
+    split_atoms: bool,
 }
 
 /// Trees of `family` with at least one leaf that is not zero: a family whose held-back
@@ -146,6 +148,7 @@ fn view(palette: &Palette, file: Option<String>, bytes: &[u8]) -> PaletteView {
         sections: palette.sections().to_vec(),
         families,
         presence,
+        split_atoms: palette.split_atoms().is_some(),
     }
 }
 
@@ -265,6 +268,11 @@ fn render_text(v: &PaletteView) -> String {
             }
         }
     }
+    s.push_str(if v.split_atoms {
+        "split atoms divide each column's energy among the present families\n"
+    } else {
+        "no split atoms: the atoms' own parts of the fit divide each column's energy\n"
+    });
     s
 }
 

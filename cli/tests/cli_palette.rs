@@ -214,6 +214,7 @@ fn show_reports_what_the_palette_file_holds() {
     assert_eq!(v["presence"]["trees_per_family"], trees.trees);
     assert_eq!(v["presence"]["tree_depth"], trees.depth);
     assert!(v["presence"]["share_network_hidden_units"].is_null());
+    assert_eq!(v["split_atoms"], false);
 
     // The table says the same in words, each family under its section.
     let o = weft(&["palette", "show", path_str(&path)]);
@@ -222,6 +223,7 @@ fn show_reports_what_the_palette_file_holds() {
     assert!(out.contains("2 families in 2 sections"), "{out}");
     assert!(out.contains("boosted trees of depth 2"), "{out}");
     assert!(out.contains("no direct share network"), "{out}");
+    assert!(out.contains("no split atoms"), "{out}");
     for fam in palette.families() {
         let line = out
             .lines()
@@ -235,6 +237,19 @@ fn show_reports_what_the_palette_file_holds() {
     let o = weft(&["palette", "show", path_str(&old), "--json"]);
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON");
     assert_eq!(v["format_version"], 1);
+
+    // One with split atoms (format 3) says that too.
+    let split = corpus_palette("valid-small-split.weftpal");
+    let o = weft(&["palette", "show", path_str(&split), "--json"]);
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON");
+    assert_eq!(v["format_version"], 3);
+    assert_eq!(v["split_atoms"], true);
+    let o = weft(&["palette", "show", path_str(&split)]);
+    assert!(
+        text(&o.stdout).contains("split atoms divide each column's energy"),
+        "{}",
+        text(&o.stdout)
+    );
 }
 
 #[test]
@@ -253,6 +268,12 @@ fn show_describes_the_built_in_palette_and_refuses_what_is_not_a_palette() {
             .expect("the built-in palette has a model")
             .features
     );
+    assert_eq!(v["split_atoms"], builtin.split_atoms().is_some());
+    assert_eq!(
+        v["format_version"],
+        weft_engine::palette::FORMAT_VERSION,
+        "the built-in palette is written in the current format"
+    );
     // Not a palette: a clear error on stderr, nothing on stdout, exit status 1.
     let dir = tempfile::tempdir().expect("temp dir");
     let junk = dir.path().join("junk.weftpal");
@@ -265,4 +286,131 @@ fn show_describes_the_built_in_palette_and_refuses_what_is_not_a_palette() {
         err.contains("junk.weftpal") && err.contains("not a usable palette"),
         "{err}"
     );
+}
+
+#[test]
+fn split_atom_options_are_refused_first_when_they_cannot_work() {
+    let base = corpus_palette("valid-small-trees.weftpal");
+    for (args, want) in [
+        (
+            vec!["--split-only", path_str(&base)],
+            "--split-only needs --split-mixes above 0",
+        ),
+        (
+            vec!["--split-mixes", "10", "--mixes", "0"],
+            "split atoms need a presence model",
+        ),
+        (vec!["--split-seconds", "0.5"], "a mix lasts 1 to 60 s"),
+        (vec!["--split-updates", "0"], "from 1 to 1000"),
+    ] {
+        let (ok, err) = learn_nowhere(&args);
+        assert!(!ok);
+        assert!(err.contains(want), "{args:?}: {err}");
+        assert!(!err.contains("/nonexistent/folders"), "{args:?}: {err}");
+    }
+    // `render --split-only` checks the palette it reuses before loading the SoundFont.
+    let render = |extra: &[&str]| {
+        let mut args = vec![
+            "palette",
+            "render",
+            "--soundfont",
+            "/nonexistent/gm.sf2",
+            "--out",
+            "/nonexistent/x.weftpal",
+            "--split-mixes",
+            "2",
+        ];
+        args.extend_from_slice(extra);
+        let o = weft(&args);
+        assert!(!o.status.success());
+        text(&o.stderr)
+    };
+    let err = render(&["--split-only", path_str(&base)]);
+    assert!(
+        err.contains("its families (low, high) are not the ones this build makes"),
+        "{err}"
+    );
+    let builtin = builtin_palette_file();
+    let err = render(&["--split-only", path_str(&builtin), "--seed", "2"]);
+    assert!(
+        err.contains("it was built with seed 1, this build uses --seed 2"),
+        "{err}"
+    );
+    let err = render(&["--split-only", path_str(&builtin)]);
+    assert!(err.contains("/nonexistent/gm.sf2"), "{err}");
+}
+
+/// The built-in palette's file in the source tree.
+fn builtin_palette_file() -> std::path::PathBuf {
+    std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../engine/src/palette/default.weftpal")
+}
+
+#[test]
+fn split_only_fits_the_split_atoms_and_keeps_everything_else() {
+    use weft_engine::palette::Palette;
+    let dir = tempfile::tempdir().expect("temp dir");
+    let out = dir.path().join("split.weftpal");
+    let builtin = builtin_palette_file();
+    let o = weft(&[
+        "palette",
+        "render",
+        "--split-only",
+        path_str(&builtin),
+        "--split-mixes",
+        "30",
+        "--split-seconds",
+        "2",
+        "--split-updates",
+        "20",
+        "--threads",
+        "2",
+        "--out",
+        path_str(&out),
+    ]);
+    let err = text(&o.stderr);
+    assert!(o.status.success(), "{err}");
+    assert!(err.contains("split atom updates: 20 of 20"), "{err}");
+    let base = Palette::from_bytes(&std::fs::read(&builtin).expect("built-in")).expect("valid");
+    let made = Palette::from_bytes(&std::fs::read(&out).expect("written")).expect("valid");
+    assert_eq!(made.atoms(), base.atoms());
+    assert_eq!(made.presence(), base.presence());
+    assert_eq!(made.analysis(), base.analysis());
+    let note = made
+        .provenance()
+        .notes
+        .iter()
+        .filter(|n| n.starts_with("split atoms:"))
+        .collect::<Vec<_>>();
+    assert_eq!(note.len(), 1, "{:?}", made.provenance().notes);
+    assert!(
+        note[0].starts_with("split atoms: fitted on 30 mixes of 2 s, 20 updates"),
+        "{}",
+        note[0]
+    );
+    // Kept only when they divide the held-back mixes' columns better, which the build reports.
+    let line = err
+        .lines()
+        .find(|l| l.starts_with("split atoms"))
+        .unwrap_or_else(|| panic!("no verdict: {err}"));
+    let numbers: Vec<f64> = line
+        .split(|c: char| !(c.is_ascii_digit() || c == '.'))
+        .filter_map(|w| w.parse().ok())
+        .collect();
+    match made.split_atoms() {
+        Some(r) => {
+            assert!(numbers[1] < numbers[0], "{line}");
+            assert_eq!(r.len(), base.atoms().len());
+            assert!(!note[0].contains("left out"));
+        }
+        None => {
+            assert!(line.starts_with("split atoms left out"), "{line}");
+            assert!(numbers[0] >= numbers[1], "{line}");
+            assert!(note[0].ends_with("left out, no better on held-back mixes"));
+        }
+    }
+    // `show` says which it is.
+    let o = weft(&["palette", "show", path_str(&out), "--json"]);
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON");
+    assert_eq!(v["split_atoms"], made.split_atoms().is_some());
+    assert_eq!(v["format_version"], 3);
 }

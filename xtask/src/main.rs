@@ -34,7 +34,9 @@ usage: cargo xtask <task>
   shot [--out DIR]          render every panel view under Xvfb into PNGs (default shots/)
   bench-timbre              time the timbre descriptors against librosa on a 3-minute file
   bench-cli                 realtime factor of `weft analyze` on a folder of 20 3-minute files
-  palette [--check]         regenerate the built-in palette from FluidR3_GM and espeak-ng
+  palette [--split-only] [--check]
+                            regenerate the built-in palette from FluidR3_GM and espeak-ng
+                            (--split-only: fit only its split atoms)
   soak [--short]            the plugin in the test host: 2 h offline + 10 min real time
                             (--short: 5 min + 20 s, the CI form)
 ";
