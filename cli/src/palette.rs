@@ -638,12 +638,7 @@ fn learn(a: &LearnArgs) -> Result<()> {
             section: idx,
         });
     }
-    let base = a
-        .build
-        .split_only
-        .as_deref()
-        .map(|p| reused_palette(p, &plan, &families))
-        .transpose()?;
+    let base = reused_palette(&a.build, &plan, &families)?;
     let voicings: Vec<FamilyVoicing> = names.iter().map(|n| clip_voicing(n)).collect();
     let composer = Composer::new(voicings, bank.counts(), 1.0);
     let provenance = Provenance {
@@ -661,9 +656,16 @@ fn learn(a: &LearnArgs) -> Result<()> {
     write_palette(&with_split_note(palette, &plan), &a.out)
 }
 
-/// The palette of `--split-only`: it must hold these families and have been built with this
-/// seed, and it must have a presence model.
-fn reused_palette(path: &Path, plan: &BuildPlan, families: &[Family]) -> Result<Palette> {
+/// The palette of `--split-only`, if given: it must hold these families and have been built
+/// with this seed, and it must have a presence model.
+fn reused_palette(
+    options: &BuildOptions,
+    plan: &BuildPlan,
+    families: &[Family],
+) -> Result<Option<Palette>> {
+    let Some(path) = options.split_only.as_deref() else {
+        return Ok(None);
+    };
     let palette = crate::analyze::load_palette(Some(path))?;
     let names = |f: &[Family]| f.iter().map(|x| x.name.clone()).collect::<Vec<_>>();
     if names(palette.families()) != names(families) {
@@ -688,7 +690,7 @@ fn reused_palette(path: &Path, plan: &BuildPlan, families: &[Family]) -> Result<
             path.display()
         );
     }
-    Ok(std::sync::Arc::unwrap_or_clone(palette))
+    Ok(Some(std::sync::Arc::unwrap_or_clone(palette)))
 }
 
 /// `palette` with a provenance note on its split atoms in place of any earlier one.
@@ -815,12 +817,7 @@ fn soundfont_scene(
 fn render(a: &RenderArgs) -> Result<()> {
     let plan = plan_from(&a.build)?;
     let (families, sections) = default_families();
-    let base = a
-        .build
-        .split_only
-        .as_deref()
-        .map(|p| reused_palette(p, &plan, &families))
-        .transpose()?;
+    let base = reused_palette(&a.build, &plan, &families)?;
     let renderer = load_soundfont(&a.soundfont)?;
     let (voicings, bank, voice_source) = soundfont_scene(a.voice, 0)?;
     let composer = Composer::new(voicings, bank.counts(), 0.6);

@@ -291,6 +291,55 @@ pub fn render_mix(
     Ok(Mix::new(&members, &gains, sample_rate_hz))
 }
 
+/// Where the mixes of a build or a check come from: the scene, which families may sound and
+/// how many at what gains.
+struct MixSource<'a> {
+    renderer: Option<&'a SoundFontRenderer>,
+    composer: &'a Composer,
+    clips: &'a ClipBank,
+    candidates: Vec<usize>,
+    max_families: usize,
+    gain_range_db: (f64, f64),
+    sample_rate_hz: u32,
+}
+
+impl<'a> MixSource<'a> {
+    /// A build's mixes: any of its `families`, as `plan` says.
+    fn of_build(
+        renderer: Option<&'a SoundFontRenderer>,
+        composer: &'a Composer,
+        clips: &'a ClipBank,
+        plan: &BuildPlan,
+        families: usize,
+    ) -> Self {
+        Self {
+            renderer,
+            composer,
+            clips,
+            candidates: (0..families).collect(),
+            max_families: plan.max_families,
+            gain_range_db: plan.gain_range_db,
+            sample_rate_hz: plan.sample_rate_hz,
+        }
+    }
+
+    /// Mix `i` of the seed stream `stream`, `mix_s` seconds long.
+    fn mix(&self, stream: u64, i: usize, mix_s: f64) -> Result<Mix, BuildError> {
+        let seed = SceneRng::derive(stream, i as u64).next_u64();
+        render_mix(
+            self.renderer,
+            self.composer,
+            self.clips,
+            seed,
+            &self.candidates,
+            self.max_families,
+            self.gain_range_db,
+            mix_s,
+            self.sample_rate_hz,
+        )
+    }
+}
+
 /// The material each family's atoms are learned from: its note study rendered from the
 /// SoundFont (when it has programs) followed by all its clips.
 fn family_material(
@@ -408,23 +457,10 @@ pub fn build_palette(
         "rendering {} training mixes for the presence model",
         plan.training_mixes
     ));
-    let candidates: Vec<usize> = (0..nf).collect();
+    let source = MixSource::of_build(renderer, composer, clips, plan, nf);
     let features = feature_count(nf, palette.atom_counts().iter().sum());
     // Training mix `i`, the same for the presence rows and the tolerance calibration.
-    let training_mix = |i: usize| {
-        let seed = SceneRng::derive(plan.seed ^ TRAIN_STREAM, i as u64).next_u64();
-        render_mix(
-            renderer,
-            composer,
-            clips,
-            seed,
-            &candidates,
-            plan.max_families,
-            plan.gain_range_db,
-            plan.mix_s,
-            plan.sample_rate_hz,
-        )
-    };
+    let training_mix = |i: usize| source.mix(plan.seed ^ TRAIN_STREAM, i, plan.mix_s);
     let rendered = std::sync::atomic::AtomicUsize::new(0);
     let rows = parallel(
         plan.training_mixes,
@@ -548,7 +584,7 @@ pub fn fit_split(
         .into());
     }
     let nf = palette.families().len();
-    let candidates: Vec<usize> = (0..nf).collect();
+    let source = MixSource::of_build(renderer, composer, clips, plan, nf);
     progress(&format!(
         "rendering {} mixes of {} s for the split atoms",
         split.mixes, split.mix_s
@@ -558,18 +594,7 @@ pub fn fit_split(
         split.mixes,
         plan.threads,
         |i| -> Result<SplitColumns, BuildError> {
-            let seed = SceneRng::derive(plan.seed ^ SPLIT_STREAM, i as u64).next_u64();
-            let mix = render_mix(
-                renderer,
-                composer,
-                clips,
-                seed,
-                &candidates,
-                plan.max_families,
-                plan.gain_range_db,
-                split.mix_s,
-                plan.sample_rate_hz,
-            )?;
+            let mix = source.mix(plan.seed ^ SPLIT_STREAM, i, split.mix_s)?;
             let columns = split_columns(&palette, &mix)?;
             let done = rendered.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
             tell_tenths(progress, "split mixes rendered", done, split.mixes);
@@ -642,25 +667,22 @@ pub fn check_palette(
     plan: &CheckPlan,
     mode: SharesMode,
 ) -> Result<CheckReport, BuildError> {
-    let candidates: Vec<usize> = (0..palette.families().len())
-        .filter(|&f| f < composer.voicings().len())
-        .collect();
+    let source = MixSource {
+        renderer,
+        composer,
+        clips,
+        candidates: (0..palette.families().len())
+            .filter(|&f| f < composer.voicings().len())
+            .collect(),
+        max_families: plan.max_families,
+        gain_range_db: plan.gain_range_db,
+        sample_rate_hz: plan.sample_rate_hz,
+    };
     let records = parallel(
         plan.mixes,
         plan.threads,
         |i| -> Result<MixRecord, BuildError> {
-            let seed = SceneRng::derive(plan.seed ^ CHECK_STREAM, i as u64).next_u64();
-            let mix = render_mix(
-                renderer,
-                composer,
-                clips,
-                seed,
-                &candidates,
-                plan.max_families,
-                plan.gain_range_db,
-                plan.mix_s,
-                plan.sample_rate_hz,
-            )?;
+            let mix = source.mix(plan.seed ^ CHECK_STREAM, i, plan.mix_s)?;
             Ok(evaluate_mix(palette, &mix, plan.window_s, mode)?)
         },
     );

@@ -117,13 +117,17 @@ pub fn split_column(
     }
 }
 
-/// Mean cross-entropy of the true shares against the division by `r`, over `cols` (the loss
-/// [`fit_split_atoms`] lowers; each estimated share floored at 10⁻⁶).
-pub fn split_loss(r: &[f32], family_of_atom: &[usize], cols: &SplitColumns) -> f64 {
+/// Calls `each(energies, truth)` for every column of `cols` with its division by `r` (one
+/// energy per family) and its true shares.
+fn each_division(
+    r: &[f32],
+    family_of_atom: &[usize],
+    cols: &SplitColumns,
+    mut each: impl FnMut(&[f32], &[f32]),
+) {
     let (d, a, f) = (cols.dims, cols.atoms, cols.families);
     let mut lambda = vec![0.0; d];
     let mut e = vec![0.0; f];
-    let mut loss = 0.0;
     for t in 0..cols.len() {
         split_column(
             r,
@@ -134,14 +138,22 @@ pub fn split_loss(r: &[f32], family_of_atom: &[usize], cols: &SplitColumns) -> f
             &mut lambda,
             &mut e,
         );
+        each(&e, &cols.y[t * f..(t + 1) * f]);
+    }
+}
+
+/// Mean cross-entropy of the true shares against the division by `r`, over `cols` (the loss
+/// [`fit_split_atoms`] lowers; each estimated share floored at 10⁻⁶).
+pub fn split_loss(r: &[f32], family_of_atom: &[usize], cols: &SplitColumns) -> f64 {
+    let mut loss = 0.0;
+    each_division(r, family_of_atom, cols, |e, truth| {
         let total: f32 = e.iter().sum::<f32>().max(f32::MIN_POSITIVE);
-        for (g, &eg) in e.iter().enumerate() {
-            let y = cols.y[t * f + g];
+        for (&eg, &y) in e.iter().zip(truth) {
             if y > 0.0 {
                 loss -= f64::from(y) * f64::from((eg / total).max(1e-6)).ln();
             }
         }
-    }
+    });
     loss / cols.len().max(1) as f64
 }
 
@@ -149,28 +161,16 @@ pub fn split_loss(r: &[f32], family_of_atom: &[usize], cols: &SplitColumns) -> f
 /// its division by `r`: the energy the division misattributes, counting only what the atoms
 /// explain.
 pub fn split_tv_pct(r: &[f32], family_of_atom: &[usize], cols: &SplitColumns) -> f64 {
-    let (d, a, f) = (cols.dims, cols.atoms, cols.families);
-    let mut lambda = vec![0.0; d];
-    let mut e = vec![0.0; f];
     let mut sum = 0.0;
-    for t in 0..cols.len() {
-        split_column(
-            r,
-            d,
-            family_of_atom,
-            &cols.v[t * d..(t + 1) * d],
-            &cols.h[t * a..(t + 1) * a],
-            &mut lambda,
-            &mut e,
-        );
+    each_division(r, family_of_atom, cols, |e, truth| {
         let total = f64::from(e.iter().sum::<f32>()).max(f64::from(f32::MIN_POSITIVE));
         let tv: f64 = e
             .iter()
-            .zip(&cols.y[t * f..(t + 1) * f])
+            .zip(truth)
             .map(|(&eg, &y)| (f64::from(eg) / total - f64::from(y)).abs())
             .sum();
         sum += 0.5 * tv;
-    }
+    });
     100.0 * sum / cols.len().max(1) as f64
 }
 
@@ -203,11 +203,16 @@ pub fn fit_split_atoms(
     let mut energies = Array2::<f32>::zeros((t, nf));
     let mut a_coef = Array2::<f32>::zeros((t, nf));
     // The atoms of each family, contiguous (a palette stores them family by family).
-    let mut ranges = vec![(usize::MAX, 0usize); nf];
+    let mut spans = vec![(usize::MAX, 0usize); nf];
     for (k, &f) in family_of_atom.iter().enumerate() {
-        ranges[f].0 = ranges[f].0.min(k);
-        ranges[f].1 = ranges[f].1.max(k + 1);
+        spans[f].0 = spans[f].0.min(k);
+        spans[f].1 = spans[f].1.max(k + 1);
     }
+    let ranges: Vec<(usize, (usize, usize))> = spans
+        .into_iter()
+        .enumerate()
+        .filter(|(_, (lo, hi))| lo < hi)
+        .collect();
     for it in 0..updates {
         general_mat_mul(1.0, &h, &r, 0.0, &mut lambda);
         // ratio = v / Λ.
@@ -219,13 +224,8 @@ pub fn fit_split_atoms(
         energies.fill(0.0);
         a_coef.fill(0.0);
         // First pass: each family's energy E_f = Σ_i ratio_i P_fi, P_f = H_f R_f.
-        for (f, &(lo, hi)) in ranges.iter().enumerate() {
-            if lo >= hi {
-                continue;
-            }
-            let hf = h.slice_axis(Axis(1), Slice::from(lo..hi));
-            let rf = r.slice_axis(Axis(0), Slice::from(lo..hi));
-            general_mat_mul(1.0, &hf, &rf, 0.0, &mut p);
+        for &(f, atoms) in &ranges {
+            family_part(h, &r, atoms, &mut p);
             for (row, (pr, qr)) in p.outer_iter().zip(ratio.outer_iter()).enumerate() {
                 energies[[row, f]] = pr.iter().zip(qr.iter()).map(|(&x, &q)| x * q).sum();
             }
@@ -246,13 +246,8 @@ pub fn fit_split_atoms(
         // Second pass: c_i = Σ_f a_f P_fi / Λ_i, and the gradient's negative part per family,
         // num_f = H_fᵀ (a_f ⊙ ratio).
         num.fill(0.0);
-        for (f, &(lo, hi)) in ranges.iter().enumerate() {
-            if lo >= hi {
-                continue;
-            }
-            let hf = h.slice_axis(Axis(1), Slice::from(lo..hi));
-            let rf = r.slice_axis(Axis(0), Slice::from(lo..hi));
-            general_mat_mul(1.0, &hf, &rf, 0.0, &mut p);
+        for &(f, (lo, hi)) in &ranges {
+            let hf = family_part(h, &r, (lo, hi), &mut p);
             for row in 0..t {
                 let af = a_coef[[row, f]];
                 if af == 0.0 {
@@ -292,6 +287,20 @@ pub fn fit_split_atoms(
             });
     }
     r.into_raw_vec_and_offset().0
+}
+
+/// Family part `P_f = H_f R_f` of the reconstruction (the family's atoms `lo..hi`) into `p`;
+/// returns `H_f`.
+fn family_part<'a>(
+    h: ArrayView2<'a, f32>,
+    r: &Array2<f32>,
+    (lo, hi): (usize, usize),
+    p: &mut Array2<f32>,
+) -> ArrayView2<'a, f32> {
+    let hf = h.slice_axis_move(Axis(1), Slice::from(lo..hi));
+    let rf = r.slice_axis(Axis(0), Slice::from(lo..hi));
+    general_mat_mul(1.0, &hf, &rf, 0.0, p);
+    hf
 }
 
 /// The amount stage's columns of `mix` as the product solves them (both stages, the presence
