@@ -585,7 +585,7 @@ impl SharesEstimator {
             &mut self.fam_energy,
         );
         let s: f32 = self.fam_energy.iter().sum();
-        if s > 0.0 {
+        if s.is_finite() && s > 0.0 {
             let k = explained / s;
             self.fam_energy.iter_mut().for_each(|e| *e *= k);
         } else {

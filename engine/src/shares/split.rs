@@ -102,8 +102,14 @@ pub fn split_column(
             }
         }
     }
+    // Fitted split atoms may hold values so small that a band's sum is subnormal, whose
+    // inverse overflows: such a band counts as empty.
     for l in lambda.iter_mut() {
-        *l = if *l > 0.0 { 1.0 / *l } else { 0.0 };
+        *l = if *l >= f32::MIN_POSITIVE {
+            1.0 / *l
+        } else {
+            0.0
+        };
     }
     out.fill(0.0);
     for (k, &hk) in h.iter().enumerate() {
