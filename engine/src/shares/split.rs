@@ -402,6 +402,26 @@ mod tests {
     }
 
     #[test]
+    fn bands_whose_split_atom_sum_is_subnormal_count_as_empty() {
+        // Updates halve a value at most per step, so after ~130 of them a value can be
+        // subnormal (below f32::MIN_POSITIVE ≈ 1.2e-38): its inverse overflows to infinity.
+        let tiny = 1e-40_f32;
+        assert!(tiny > 0.0 && tiny < f32::MIN_POSITIVE);
+        let r = [1.0, tiny, 0.5, 0.0, tiny, 0.5];
+        let v = [1.0, 2.0, 3.0];
+        let h = [1.0, 1.0];
+        let mut lambda = [0.0; 3];
+        let mut e = [0.0; 2];
+        split_column(&r, 3, &[0, 1], &v, &h, &mut lambda, &mut e);
+        assert!(e.iter().all(|x| x.is_finite()), "{e:?}");
+        // Band 0 is the first family's, band 1 (sum 2e-40) is empty, band 2 is shared evenly.
+        assert!(
+            (e[0] - 2.5).abs() < 1e-5 && (e[1] - 1.5).abs() < 1e-5,
+            "{e:?}"
+        );
+    }
+
+    #[test]
     fn fitting_lowers_the_loss_and_the_misattributed_energy_on_unseen_columns() {
         let (w, train) = two_family_columns(7, 400);
         let (_, held) = two_family_columns(8, 200);
