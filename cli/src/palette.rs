@@ -708,7 +708,7 @@ fn with_split_note(palette: Palette, plan: &BuildPlan) -> Palette {
     provenance.notes.push(if palette.split_atoms().is_some() {
         fitted
     } else {
-        format!("{fitted}; left out, no better on held-back mixes")
+        format!("{fitted}; left out: no gain shown on held-back mixes")
     });
     palette.with_provenance(provenance)
 }

@@ -405,7 +405,7 @@ fn split_only_fits_the_split_atoms_and_keeps_everything_else() {
         None => {
             assert!(line.starts_with("split atoms left out"), "{line}");
             assert!(numbers[0] >= numbers[1], "{line}");
-            assert!(note[0].ends_with("left out, no better on held-back mixes"));
+            assert!(note[0].ends_with("left out: no gain shown on held-back mixes"));
         }
     }
     // `show` says which it is.
