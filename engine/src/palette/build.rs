@@ -638,9 +638,16 @@ pub fn fit_split(
         held.len(),
         split.updates
     ));
-    let r = fit_split_atoms(&w, &family_of_atom, &train, split.updates, |i, _| {
-        tell_tenths(progress, "split atom updates", i + 1, split.updates);
-    });
+    let r = fit_split_atoms(
+        &w,
+        &family_of_atom,
+        &train,
+        split.updates,
+        plan.threads,
+        |i, _| {
+            tell_tenths(progress, "split atom updates", i + 1, split.updates);
+        },
+    );
     let before = split_tv_pct(&w, &family_of_atom, &held);
     let after = split_tv_pct(&r, &family_of_atom, &held);
     if after >= before {

@@ -1199,7 +1199,7 @@ mod tests {
             let s: f32 = atom.iter().sum();
             atom.iter_mut().for_each(|v| *v /= s);
         }
-        let r = fit_split_atoms(&w, &family_of_atom, &cols, 40, |_, _| {});
+        let r = fit_split_atoms(&w, &family_of_atom, &cols, 40, 2, |_, _| {});
         let before = split_tv_pct(&w, &family_of_atom, &cols);
         let after = split_tv_pct(&r, &family_of_atom, &cols);
         (p.with_split_atoms(Some(r)).expect("valid"), before, after)

@@ -22,9 +22,10 @@
 use super::estimator::{SharesMode, SharesSettings};
 use super::tracker::SharesTracker;
 use crate::palette::Palette;
+use crate::parallel::parallel;
 use crate::scene::Mix;
 use ndarray::linalg::general_mat_mul;
-use ndarray::{Array2, ArrayView2, Axis, Slice};
+use ndarray::{Array2, ArrayView2, ArrayViewMut1, Axis, Slice};
 
 /// The largest factor one update may change a split atom's value by (and its inverse the
 /// smallest): keeps the first updates, whose gradients are steep, from overshooting (common
@@ -180,133 +181,184 @@ pub fn split_tv_pct(r: &[f32], family_of_atom: &[usize], cols: &SplitColumns) ->
     100.0 * sum / cols.len().max(1) as f64
 }
 
+/// One family's rows of the columns: those where its activations are not all zero (the amount
+/// stage gives the families it judged absent none), with those activations. The fit's products
+/// for the family run over these rows only: every other row adds nothing to them.
+struct FamilyRows {
+    family: usize,
+    /// The family's atoms, `lo..hi`.
+    atoms: (usize, usize),
+    rows: Vec<usize>,
+    /// `rows.len() × (hi − lo)`.
+    h: Array2<f32>,
+}
+
+impl FamilyRows {
+    /// Each family's rows of `cols`; families without atoms or rows are left out.
+    fn of(cols: &SplitColumns, family_of_atom: &[usize]) -> Vec<Self> {
+        let a = cols.atoms;
+        let mut spans = vec![(usize::MAX, 0usize); cols.families];
+        for (k, &f) in family_of_atom.iter().enumerate() {
+            spans[f].0 = spans[f].0.min(k);
+            spans[f].1 = spans[f].1.max(k + 1);
+        }
+        let mut parts = Vec::new();
+        for (family, (lo, hi)) in spans.into_iter().enumerate() {
+            let of_row = |row: usize| &cols.h[row * a + lo..row * a + hi];
+            let rows: Vec<usize> = (0..cols.len())
+                .filter(|&row| lo < hi && of_row(row).iter().any(|&x| x > 0.0))
+                .collect();
+            let values = rows.iter().flat_map(|&row| of_row(row)).copied().collect();
+            if let (false, Ok(h)) = (
+                rows.is_empty(),
+                Array2::from_shape_vec((rows.len(), hi.saturating_sub(lo)), values),
+            ) {
+                parts.push(Self {
+                    family,
+                    atoms: (lo, hi),
+                    rows,
+                    h,
+                });
+            }
+        }
+        parts
+    }
+
+    /// `P_f = H_f R_f`: the family's part of the reconstruction on its rows.
+    fn part(&self, r: &Array2<f32>) -> Array2<f32> {
+        let rf = r.slice_axis(Axis(0), Slice::from(self.atoms.0..self.atoms.1));
+        let mut p = Array2::<f32>::zeros((self.rows.len(), r.ncols()));
+        general_mat_mul(1.0, &self.h, &rf, 0.0, &mut p);
+        p
+    }
+
+    /// `H_fᵀ X`, where `fill(row, x)` writes the row of `X` for column `row` into `x`.
+    fn transposed_product(
+        &self,
+        dims: usize,
+        fill: impl Fn(usize, ArrayViewMut1<f32>),
+    ) -> Array2<f32> {
+        let mut x = Array2::<f32>::zeros((self.rows.len(), dims));
+        for (xr, &row) in x.outer_iter_mut().zip(&self.rows) {
+            fill(row, xr);
+        }
+        let mut out = Array2::<f32>::zeros((self.h.ncols(), dims));
+        general_mat_mul(1.0, &self.h.t(), &x, 0.0, &mut out);
+        out
+    }
+}
+
 /// Fits split atoms, starting from `w` (atom-major, each atom summing to 1, family by family
-/// as `family_of_atom` says), over `cols` with `updates` multiplicative updates;
+/// as `family_of_atom` says), over `cols` with `updates` multiplicative updates, each family's
+/// products on one of up to `threads` threads (the result does not depend on their number);
 /// `on_update(i, loss)` is told the training loss before update `i`.
 pub fn fit_split_atoms(
     w: &[f32],
     family_of_atom: &[usize],
     cols: &SplitColumns,
     updates: usize,
+    threads: usize,
     mut on_update: impl FnMut(usize, f64),
 ) -> Vec<f32> {
     let (d, a, nf) = (cols.dims, cols.atoms, cols.families);
     let t = cols.len();
-    let (Ok(v), Ok(h), Ok(mut r)) = (
+    let (Ok(v), Ok(mut r)) = (
         ArrayView2::from_shape((t, d), &cols.v),
-        ArrayView2::from_shape((t, a), &cols.h),
         Array2::from_shape_vec((a, d), w.to_vec()),
     ) else {
         return w.to_vec();
     };
+    if cols.h.len() != t * a || cols.y.len() != t * nf || family_of_atom.len() != a {
+        return w.to_vec();
+    }
+    let parts = FamilyRows::of(cols, family_of_atom);
     let mut lambda = Array2::<f32>::zeros((t, d));
-    let mut p = Array2::<f32>::zeros((t, d));
     let mut ratio = Array2::<f32>::zeros((t, d));
     let mut c = Array2::<f32>::zeros((t, d));
-    let mut weighted = Array2::<f32>::zeros((t, d));
-    let mut num = Array2::<f32>::zeros((a, d));
-    let mut den = Array2::<f32>::zeros((a, d));
-    let mut energies = Array2::<f32>::zeros((t, nf));
-    let mut a_coef = Array2::<f32>::zeros((t, nf));
-    // The atoms of each family, contiguous (a palette stores them family by family).
-    let mut spans = vec![(usize::MAX, 0usize); nf];
-    for (k, &f) in family_of_atom.iter().enumerate() {
-        spans[f].0 = spans[f].0.min(k);
-        spans[f].1 = spans[f].1.max(k + 1);
-    }
-    let ranges: Vec<(usize, (usize, usize))> = spans
-        .into_iter()
-        .enumerate()
-        .filter(|(_, (lo, hi))| lo < hi)
-        .collect();
+    let mut energies = vec![0.0_f32; t * nf];
+    let mut a_coef = vec![0.0_f32; t * nf];
     for it in 0..updates {
-        general_mat_mul(1.0, &h, &r, 0.0, &mut lambda);
+        // Each family's part P_f on its rows, and their sum Λ.
+        let p: Vec<Array2<f32>> = parallel(parts.len(), threads, |i| parts[i].part(&r));
+        lambda.fill(0.0);
+        for (fr, pf) in parts.iter().zip(&p) {
+            for (pr, &row) in pf.outer_iter().zip(&fr.rows) {
+                let mut lr = lambda.row_mut(row);
+                lr += &pr;
+            }
+        }
         // ratio = v / Λ.
         ndarray::Zip::from(&mut ratio)
             .and(&v)
             .and(&lambda)
             .for_each(|q, &x, &l| *q = if l > 0.0 { x / l } else { 0.0 });
-        c.fill(0.0);
+        // Each family's energy E_f = Σ_i ratio_i P_fi.
         energies.fill(0.0);
-        a_coef.fill(0.0);
-        // First pass: each family's energy E_f = Σ_i ratio_i P_fi, P_f = H_f R_f.
-        for &(f, atoms) in &ranges {
-            family_part(h, &r, atoms, &mut p);
-            for (row, (pr, qr)) in p.outer_iter().zip(ratio.outer_iter()).enumerate() {
-                energies[[row, f]] = pr.iter().zip(qr.iter()).map(|(&x, &q)| x * q).sum();
+        for (fr, pf) in parts.iter().zip(&p) {
+            for (pr, &row) in pf.outer_iter().zip(&fr.rows) {
+                energies[row * nf + fr.family] = pr.dot(&ratio.row(row));
             }
         }
+        a_coef.fill(0.0);
         let mut loss = 0.0_f64;
         for row in 0..t {
-            let total: f32 = energies.row(row).sum().max(f32::MIN_POSITIVE);
-            for f in 0..nf {
+            let e = &energies[row * nf..(row + 1) * nf];
+            let total: f32 = e.iter().sum::<f32>().max(f32::MIN_POSITIVE);
+            for (f, &ef) in e.iter().enumerate() {
                 let y = cols.y[row * nf + f];
-                let e = energies[[row, f]];
                 if y > 0.0 {
-                    loss -= f64::from(y) * f64::from((e / total).max(1e-6)).ln();
-                    a_coef[[row, f]] = if e > 0.0 { y / e } else { 0.0 };
+                    loss -= f64::from(y) * f64::from((ef / total).max(1e-6)).ln();
+                    a_coef[row * nf + f] = if ef > 0.0 { y / ef } else { 0.0 };
                 }
             }
         }
         on_update(it, loss / t.max(1) as f64);
-        // Second pass: c_i = Σ_f a_f P_fi / Λ_i, and the gradient's negative part per family,
-        // num_f = H_fᵀ (a_f ⊙ ratio).
-        num.fill(0.0);
-        for &(f, (lo, hi)) in &ranges {
-            let hf = family_part(h, &r, (lo, hi), &mut p);
-            for row in 0..t {
-                let af = a_coef[[row, f]];
+        // c_i = Σ_f a_f P_fi / Λ_i.
+        c.fill(0.0);
+        for (fr, pf) in parts.iter().zip(&p) {
+            for (pr, &row) in pf.outer_iter().zip(&fr.rows) {
+                let af = a_coef[row * nf + fr.family];
                 if af == 0.0 {
                     continue;
                 }
-                let mut cr = c.row_mut(row);
-                let pr = p.row(row);
                 let lr = lambda.row(row);
-                for ((cv, &pv), &lv) in cr.iter_mut().zip(pr.iter()).zip(lr.iter()) {
+                for ((cv, &pv), &lv) in c.row_mut(row).iter_mut().zip(pr).zip(lr) {
                     if lv > 0.0 {
                         *cv += af * pv / lv;
                     }
                 }
             }
-            ndarray::Zip::from(weighted.rows_mut())
-                .and(ratio.rows())
-                .and(a_coef.column(f))
-                .for_each(|mut wr, qr, &af| {
-                    wr.iter_mut().zip(qr.iter()).for_each(|(x, &q)| *x = af * q);
-                });
-            let mut nf_block = num.slice_axis_mut(Axis(0), Slice::from(lo..hi));
-            general_mat_mul(1.0, &hf.t(), &weighted, 0.0, &mut nf_block);
         }
-        // The positive part, den = Hᵀ (c ⊙ ratio).
-        ndarray::Zip::from(&mut weighted)
-            .and(&c)
-            .and(&ratio)
-            .for_each(|x, &cv, &q| *x = cv * q);
-        general_mat_mul(1.0, &h.t(), &weighted, 0.0, &mut den);
-        ndarray::Zip::from(&mut r)
-            .and(&num)
-            .and(&den)
-            .for_each(|rv, &n, &dv| {
-                if dv > 0.0 && n > 0.0 {
-                    *rv *= (n / dv).clamp(1.0 / MAX_STEP, MAX_STEP);
-                }
+        drop(p);
+        // Per family, the gradient's negative part H_fᵀ (a_f ⊙ ratio) and its positive part
+        // H_fᵀ (c ⊙ ratio).
+        let steps: Vec<(Array2<f32>, Array2<f32>)> = parallel(parts.len(), threads, |i| {
+            let fr = &parts[i];
+            let num = fr.transposed_product(d, |row, mut x| {
+                let af = a_coef[row * nf + fr.family];
+                x.zip_mut_with(&ratio.row(row), |o, &q| *o = af * q);
             });
+            let den = fr.transposed_product(d, |row, x| {
+                ndarray::Zip::from(x)
+                    .and(c.row(row))
+                    .and(ratio.row(row))
+                    .for_each(|o, &cv, &q| *o = cv * q);
+            });
+            (num, den)
+        });
+        for (fr, (num, den)) in parts.iter().zip(steps) {
+            let rf = r.slice_axis_mut(Axis(0), Slice::from(fr.atoms.0..fr.atoms.1));
+            ndarray::Zip::from(rf)
+                .and(&num)
+                .and(&den)
+                .for_each(|rv, &n, &dv| {
+                    if dv > 0.0 && n > 0.0 {
+                        *rv *= (n / dv).clamp(1.0 / MAX_STEP, MAX_STEP);
+                    }
+                });
+        }
     }
     r.into_raw_vec_and_offset().0
-}
-
-/// Family part `P_f = H_f R_f` of the reconstruction (the family's atoms `lo..hi`) into `p`;
-/// returns `H_f`.
-fn family_part<'a>(
-    h: ArrayView2<'a, f32>,
-    r: &Array2<f32>,
-    (lo, hi): (usize, usize),
-    p: &mut Array2<f32>,
-) -> ArrayView2<'a, f32> {
-    let hf = h.slice_axis_move(Axis(1), Slice::from(lo..hi));
-    let rf = r.slice_axis(Axis(0), Slice::from(lo..hi));
-    general_mat_mul(1.0, &hf, &rf, 0.0, p);
-    hf
 }
 
 /// The amount stage's columns of `mix` as the product solves them (both stages, the presence
@@ -344,6 +396,219 @@ pub fn split_columns(palette: &Palette, mix: &Mix) -> Result<SplitColumns, super
 mod tests {
     use super::*;
     use crate::scene::SceneRng;
+
+    /// The fit as first written (and as it fitted the built-in palette's split atoms): every
+    /// product dense over all rows and atoms. The reference the sparse fit must follow.
+    fn dense_fit(
+        w: &[f32],
+        family_of_atom: &[usize],
+        cols: &SplitColumns,
+        updates: usize,
+    ) -> Vec<f32> {
+        let (d, a, nf) = (cols.dims, cols.atoms, cols.families);
+        let t = cols.len();
+        let (Ok(v), Ok(h), Ok(mut r)) = (
+            ArrayView2::from_shape((t, d), &cols.v),
+            ArrayView2::from_shape((t, a), &cols.h),
+            Array2::from_shape_vec((a, d), w.to_vec()),
+        ) else {
+            return w.to_vec();
+        };
+        let mut lambda = Array2::<f32>::zeros((t, d));
+        let mut p = Array2::<f32>::zeros((t, d));
+        let mut ratio = Array2::<f32>::zeros((t, d));
+        let mut c = Array2::<f32>::zeros((t, d));
+        let mut weighted = Array2::<f32>::zeros((t, d));
+        let mut num = Array2::<f32>::zeros((a, d));
+        let mut den = Array2::<f32>::zeros((a, d));
+        let mut energies = Array2::<f32>::zeros((t, nf));
+        let mut a_coef = Array2::<f32>::zeros((t, nf));
+        // The atoms of each family, contiguous (a palette stores them family by family).
+        let mut spans = vec![(usize::MAX, 0usize); nf];
+        for (k, &f) in family_of_atom.iter().enumerate() {
+            spans[f].0 = spans[f].0.min(k);
+            spans[f].1 = spans[f].1.max(k + 1);
+        }
+        let ranges: Vec<(usize, (usize, usize))> = spans
+            .into_iter()
+            .enumerate()
+            .filter(|(_, (lo, hi))| lo < hi)
+            .collect();
+        for _ in 0..updates {
+            general_mat_mul(1.0, &h, &r, 0.0, &mut lambda);
+            // ratio = v / Λ.
+            ndarray::Zip::from(&mut ratio)
+                .and(&v)
+                .and(&lambda)
+                .for_each(|q, &x, &l| *q = if l > 0.0 { x / l } else { 0.0 });
+            c.fill(0.0);
+            energies.fill(0.0);
+            a_coef.fill(0.0);
+            // First pass: each family's energy E_f = Σ_i ratio_i P_fi, P_f = H_f R_f.
+            for &(f, atoms) in &ranges {
+                family_part(h, &r, atoms, &mut p);
+                for (row, (pr, qr)) in p.outer_iter().zip(ratio.outer_iter()).enumerate() {
+                    energies[[row, f]] = pr.iter().zip(qr.iter()).map(|(&x, &q)| x * q).sum();
+                }
+            }
+            let mut loss = 0.0_f64;
+            for row in 0..t {
+                let total: f32 = energies.row(row).sum().max(f32::MIN_POSITIVE);
+                for f in 0..nf {
+                    let y = cols.y[row * nf + f];
+                    let e = energies[[row, f]];
+                    if y > 0.0 {
+                        loss -= f64::from(y) * f64::from((e / total).max(1e-6)).ln();
+                        a_coef[[row, f]] = if e > 0.0 { y / e } else { 0.0 };
+                    }
+                }
+            }
+            let _ = loss;
+            // Second pass: c_i = Σ_f a_f P_fi / Λ_i, and the gradient's negative part per family,
+            // num_f = H_fᵀ (a_f ⊙ ratio).
+            num.fill(0.0);
+            for &(f, (lo, hi)) in &ranges {
+                let hf = family_part(h, &r, (lo, hi), &mut p);
+                for row in 0..t {
+                    let af = a_coef[[row, f]];
+                    if af == 0.0 {
+                        continue;
+                    }
+                    let mut cr = c.row_mut(row);
+                    let pr = p.row(row);
+                    let lr = lambda.row(row);
+                    for ((cv, &pv), &lv) in cr.iter_mut().zip(pr.iter()).zip(lr.iter()) {
+                        if lv > 0.0 {
+                            *cv += af * pv / lv;
+                        }
+                    }
+                }
+                ndarray::Zip::from(weighted.rows_mut())
+                    .and(ratio.rows())
+                    .and(a_coef.column(f))
+                    .for_each(|mut wr, qr, &af| {
+                        wr.iter_mut().zip(qr.iter()).for_each(|(x, &q)| *x = af * q);
+                    });
+                let mut nf_block = num.slice_axis_mut(Axis(0), Slice::from(lo..hi));
+                general_mat_mul(1.0, &hf.t(), &weighted, 0.0, &mut nf_block);
+            }
+            // The positive part, den = Hᵀ (c ⊙ ratio).
+            ndarray::Zip::from(&mut weighted)
+                .and(&c)
+                .and(&ratio)
+                .for_each(|x, &cv, &q| *x = cv * q);
+            general_mat_mul(1.0, &h.t(), &weighted, 0.0, &mut den);
+            ndarray::Zip::from(&mut r)
+                .and(&num)
+                .and(&den)
+                .for_each(|rv, &n, &dv| {
+                    if dv > 0.0 && n > 0.0 {
+                        *rv *= (n / dv).clamp(1.0 / MAX_STEP, MAX_STEP);
+                    }
+                });
+        }
+        r.into_raw_vec_and_offset().0
+    }
+
+    /// Family part `P_f = H_f R_f` of the reconstruction (the family's atoms `lo..hi`) into `p`;
+    /// returns `H_f`.
+    fn family_part<'a>(
+        h: ArrayView2<'a, f32>,
+        r: &Array2<f32>,
+        (lo, hi): (usize, usize),
+        p: &mut Array2<f32>,
+    ) -> ArrayView2<'a, f32> {
+        let hf = h.slice_axis_move(Axis(1), Slice::from(lo..hi));
+        let rf = r.slice_axis(Axis(0), Slice::from(lo..hi));
+        general_mat_mul(1.0, &hf, &rf, 0.0, p);
+        hf
+    }
+
+    /// Columns of `families` families of `per` atoms over `dims` values, each column sounding
+    /// one to three of them (the others' activations zero, as the amount stage leaves the
+    /// families it judged absent), with true shares off from the activations' own.
+    fn sparse_columns(
+        seed: u64,
+        n: usize,
+        families: usize,
+        per: usize,
+        dims: usize,
+    ) -> (Vec<f32>, Vec<usize>, SplitColumns) {
+        let mut rng = SceneRng::new(seed);
+        let atoms = families * per;
+        let w: Vec<f32> = (0..atoms)
+            .flat_map(|_| {
+                let a: Vec<f32> = (0..dims).map(|_| rng.uniform(0.0, 1.0) as f32).collect();
+                let s: f32 = a.iter().sum();
+                a.into_iter().map(move |x| x / s)
+            })
+            .collect();
+        let family_of_atom: Vec<usize> = (0..atoms).map(|k| k / per).collect();
+        let mut cols = SplitColumns::new(dims, atoms, families);
+        for _ in 0..n {
+            let sounding = 1 + (rng.uniform(0.0, 3.0) as usize).min(2);
+            let mut on = vec![false; families];
+            for _ in 0..sounding {
+                on[(rng.uniform(0.0, families as f64) as usize).min(families - 1)] = true;
+            }
+            let h: Vec<f32> = (0..atoms)
+                .map(|k| {
+                    if on[k / per] {
+                        rng.uniform(0.0, 1.0) as f32
+                    } else {
+                        0.0
+                    }
+                })
+                .collect();
+            let v: Vec<f32> = (0..dims)
+                .map(|i| {
+                    (0..atoms).map(|k| h[k] * w[k * dims + i]).sum::<f32>()
+                        * rng.uniform(0.7, 1.3) as f32
+                })
+                .collect();
+            let mut y: Vec<f32> = (0..families)
+                .map(|f| {
+                    if on[f] {
+                        rng.uniform(0.1, 1.0) as f32
+                    } else {
+                        0.0
+                    }
+                })
+                .collect();
+            let s: f32 = y.iter().sum();
+            y.iter_mut().for_each(|x| *x /= s);
+            cols.v.extend(v);
+            cols.h.extend(h);
+            cols.y.extend(y);
+        }
+        (w, family_of_atom, cols)
+    }
+
+    #[test]
+    fn the_fit_skips_absent_families_rows_and_threads_change_nothing() {
+        let (w, family_of_atom, cols) = sparse_columns(11, 300, 6, 3, 10);
+        // Some families sound in few columns, none in all: the rows each family skips matter.
+        let parts = FamilyRows::of(&cols, &family_of_atom);
+        assert_eq!(parts.len(), 6);
+        assert!(
+            parts
+                .iter()
+                .all(|p| p.rows.len() > 10 && p.rows.len() < 250)
+        );
+        let one = fit_split_atoms(&w, &family_of_atom, &cols, 30, 1, |_, _| {});
+        let three = fit_split_atoms(&w, &family_of_atom, &cols, 30, 3, |_, _| {});
+        assert_eq!(one, three);
+        let dense = dense_fit(&w, &family_of_atom, &cols, 30);
+        // Only the order of the sums differs from the dense products.
+        let worst = one
+            .iter()
+            .zip(&dense)
+            .map(|(&s, &d)| ((s - d) / d.abs().max(1e-3)).abs())
+            .fold(0.0_f32, f32::max);
+        assert!(worst < 1e-3, "largest relative difference {worst}");
+        assert!(split_loss(&one, &family_of_atom, &cols) < split_loss(&w, &family_of_atom, &cols));
+        assert_ne!(one, w, "the fit moved the atoms");
+    }
 
     /// Columns of two families whose true spectra differ from the analysis atoms: the palette
     /// thinks both cover the middle bins equally, while the first family truly holds little
@@ -427,7 +692,7 @@ mod tests {
         let (_, held) = two_family_columns(8, 200);
         let family_of_atom = [0, 1];
         let mut losses = Vec::new();
-        let r = fit_split_atoms(&w, &family_of_atom, &train, 200, |i, l| {
+        let r = fit_split_atoms(&w, &family_of_atom, &train, 200, 1, |i, l| {
             assert_eq!(i, losses.len());
             losses.push(l);
         });
