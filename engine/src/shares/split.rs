@@ -15,7 +15,8 @@
 //! Measured on the built-in palette (`weft palette check --mixes 60`, mean of seeds 1–6, energy
 //! misattributed per family / per section, presence F1): without split atoms 23.04 / 20.56 /
 //! 0.767; fitted on 4 000 mixes of 4 s (100 updates) 22.68 / 20.26 / 0.766; on 8 000 mixes
-//! (150 updates) 22.55 / 20.13 / 0.766. The stems' band energies as the target (the paper's
+//! (150 updates) 22.55 / 20.13 / 0.766; on 16 000 mixes (300 updates) 22.44 / 20.01 / 0.767.
+//! The stems' band energies as the target (the paper's
 //! KL objective) did no better than the shares (22.91 against 22.89 per family at 2 000 mixes),
 //! nor did fitting on amount-stage solves given the true families (22.75 at 4 000 mixes).
 
