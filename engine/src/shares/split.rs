@@ -398,8 +398,8 @@ mod tests {
     use super::*;
     use crate::scene::SceneRng;
 
-    /// The fit as first written (and as it fitted the built-in palette's split atoms): every
-    /// product dense over all rows and atoms. The reference the sparse fit must follow.
+    /// The fit as first written: every product dense over all rows and atoms. The reference
+    /// the fit that skips absent families' rows must follow.
     fn dense_fit(
         w: &[f32],
         family_of_atom: &[usize],
