@@ -195,7 +195,8 @@ struct FamilyRows {
 }
 
 impl FamilyRows {
-    /// Each family's rows of `cols`; families without atoms or rows are left out.
+    /// Each family's rows of `cols`; families without atoms or rows are left out. A family's
+    /// atoms are contiguous (a palette stores them family by family).
     fn of(cols: &SplitColumns, family_of_atom: &[usize]) -> Vec<Self> {
         let a = cols.atoms;
         let mut spans = vec![(usize::MAX, 0usize); cols.families];
