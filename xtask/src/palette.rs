@@ -93,8 +93,8 @@ const PRESENCE_TRAINING: [&str; 24] = [
 /// How the built-in palette's split atoms are fitted (`crate::shares::split` in the engine has
 /// the measurements): on 16 000 mixes of 4 s, 300 updates, seeds 1–6 went from 23.04 to 22.44 %
 /// (per section 20.56 → 20.01 %, F1 0.767 → 0.767); 8 000 mixes and 150 updates gave 22.55 %,
-/// 4 000 mixes and 100 updates 22.68 %. The fit takes 25 min on 2 cores (15 of them rendering
-/// and solving the mixes) and 7.8 GB of memory at most.
+/// 4 000 mixes and 100 updates 22.68 %. `--split-only` takes about 25 min on 2 cores (rendering
+/// and solving the mixes, then the updates) and 7.8 GB of memory at most.
 /// With `--split-only` the task keeps the palette file's atoms and presence model and fits only
 /// these, which the full build would fit the same way as its last step.
 const SPLIT_TRAINING: [&str; 6] = [
