@@ -206,14 +206,17 @@ impl FamilyRows {
         }
         let mut parts = Vec::new();
         for (family, (lo, hi)) in spans.into_iter().enumerate() {
+            if lo >= hi {
+                continue;
+            }
             let of_row = |row: usize| &cols.h[row * a + lo..row * a + hi];
             let rows: Vec<usize> = (0..cols.len())
-                .filter(|&row| lo < hi && of_row(row).iter().any(|&x| x > 0.0))
+                .filter(|&row| of_row(row).iter().any(|&x| x > 0.0))
                 .collect();
             let values = rows.iter().flat_map(|&row| of_row(row)).copied().collect();
             if let (false, Ok(h)) = (
                 rows.is_empty(),
-                Array2::from_shape_vec((rows.len(), hi.saturating_sub(lo)), values),
+                Array2::from_shape_vec((rows.len(), hi - lo), values),
             ) {
                 parts.push(Self {
                     family,
